@@ -1,0 +1,47 @@
+"""The ``covextract`` command: one small module per command, thin over the library.
+
+Heavy libraries are imported inside the commands so ``covextract --help`` is
+instant.
+"""
+
+from __future__ import annotations
+
+import typer
+
+from covextract.cli import check as _check
+from covextract.cli import demo as _demo
+from covextract.cli import describe as _describe
+from covextract.cli import run as _run
+
+app = typer.Typer(
+    name="covextract",
+    help=(
+        "Environmental covariates from satellite rasters, summarised over the units of a "
+        "health study (villages, survey clusters, facilities)."
+    ),
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+app.command("run")(_run.run_command)
+app.command("check")(_check.check_command)
+app.command("describe")(_describe.describe_command)
+app.command("demo")(_demo.demo_command)
+
+
+@app.callback()
+def _main(
+    version: bool = typer.Option(False, "--version", help="Print versions and exit.", is_eager=True),
+) -> None:
+    if version:
+        from covextract.outputs.manifest import package_versions
+
+        for name, value in package_versions().items():
+            typer.echo(f"{name}: {value}")
+        raise typer.Exit()
+
+
+def main() -> None:
+    """Entry point of the ``covextract`` script."""
+    app()

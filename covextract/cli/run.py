@@ -1,0 +1,24 @@
+"""``covextract run RECIPE``: compute and write the covariates."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+
+from covextract.cli.common import DEBUG_HELP, cli_errors
+
+
+def run_command(
+    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
+    debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
+) -> None:
+    """Compute the covariates of RECIPE and write the table, codebook and manifest."""
+    with cli_errors(debug):
+        from covextract.cli.summary import print_summary
+        from covextract.pipeline import run
+
+        result = run(recipe, write=True, progress=not quiet)
+        if not quiet:
+            print_summary(result)

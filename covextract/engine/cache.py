@@ -1,0 +1,84 @@
+"""On-disk cache of coverage weights, keyed by what determines them.
+
+The key is a fingerprint of the grid, the unit geometries (ids, WKB and the
+parameters that shaped them), the pixel rule and the kernel and PROJ
+versions. Files are ``.npz`` archives of plain arrays, read with
+``allow_pickle=False``. The cache reveals where the units are: keep it with
+the confidential inputs, never with outputs meant for sharing.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import warnings
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from covextract.engine.weights import WeightSet
+from covextract.errors import CacheWarning
+from covextract.io.writers import atomic_write_bytes
+
+__all__ = ["KERNEL_VERSION", "weights_key", "WeightCache"]
+
+#: Bump when the coverage kernels change their output.
+KERNEL_VERSION = "1"
+
+
+def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str:
+    """Cache key of one weight set."""
+    import pyproj
+
+    text = "|".join(
+        [KERNEL_VERSION, pyproj.proj_version_str, grid_fingerprint, units_fingerprint, rule]
+    )
+    return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+class WeightCache:
+    """Weights stored as ``<folder>/weights/<key>.npz``.
+
+    Parameters
+    ----------
+    folder : Path or None
+        The state folder; ``None`` disables the cache.
+    """
+
+    def __init__(self, folder) -> None:
+        self.folder = Path(folder) / "weights" if folder is not None else None
+        self.hits = 0
+        self.builds = 0
+
+    def path(self, key: str) -> Path | None:
+        """File of ``key``."""
+        return None if self.folder is None else self.folder / f"{key}.npz"
+
+    def get(self, key: str) -> WeightSet | None:
+        """Load weights, or ``None`` when absent; a corrupt file warns and is ignored."""
+        path = self.path(key)
+        if path is None or not path.exists():
+            return None
+        try:
+            with np.load(path, allow_pickle=False) as data:
+                ws = WeightSet.from_arrays({k: data[k] for k in data.files})
+        except (OSError, ValueError, KeyError, zipfile.BadZipFile, EOFError) as exc:
+            warnings.warn(
+                f"weights cache file {path} is unreadable ({exc.__class__.__name__}); "
+                "the weights are rebuilt",
+                CacheWarning,
+                stacklevel=2,
+            )
+            return None
+        self.hits += 1
+        return ws
+
+    def put(self, key: str, weights: WeightSet) -> None:
+        """Store weights atomically (no-op when the cache is disabled)."""
+        path = self.path(key)
+        if path is None:
+            return
+        buf = io.BytesIO()
+        np.savez(buf, **weights.to_arrays())
+        atomic_write_bytes(path, buf.getvalue())

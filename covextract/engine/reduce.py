@@ -1,0 +1,206 @@
+"""Block-streamed reduction: per-unit sufficient statistics from raster blocks.
+
+For each block the engine gathers the pixels the weights need, applies the
+valid mask, and computes a :class:`BlockPartial` of per-unit sums. Partials
+are merged into an :class:`Accumulator` in block order (fixed), so any
+execution order of the blocks gives bit-identical results.
+
+Weights
+-------
+For entry *i* (a pixel of a unit) with coverage ``c`` and true ground area
+``a`` (m²): the *statistical weight* is ``w = c·a`` when area weighting is on
+and ``w = c`` when it is off. Means, spreads, percentiles, ``valid_share`` and
+``share_above`` use ``w``; ``sum`` is Σ c·v; ``density_total`` is
+Σ c·v·a/10⁶ and ``area_km2`` Σ c·a/10⁶ (always true areas).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["BlockPartial", "Accumulator", "reduce_block"]
+
+
+@dataclass
+class BlockPartial:
+    """Per-unit sums of one block (only the units present in it)."""
+
+    units: np.ndarray  # global unit index, sorted
+    w_all: np.ndarray  # Σ w over every entry (valid or not)
+    area_all: np.ndarray  # Σ c·a/1e6 over every entry, km²
+    count: np.ndarray  # valid entries
+    w: np.ndarray  # Σ w over valid entries
+    mean: np.ndarray  # Σ w·v / Σ w (NaN where w == 0)
+    m2: np.ndarray  # Σ w·(v − mean)²
+    csum: np.ndarray  # Σ c·v
+    dens: np.ndarray  # Σ c·v·a/1e6
+    vmin: np.ndarray
+    vmax: np.ndarray
+    above_area: dict  # threshold -> Σ c·a/1e6 over valid v > thr
+    above_w: dict  # threshold -> Σ w over valid v > thr
+    dist: tuple | None = None  # (unit, value, w) of valid entries, when asked for
+
+
+def reduce_block(
+    unit: np.ndarray,
+    pix: np.ndarray,
+    cov: np.ndarray,
+    values: np.ndarray,
+    valid: np.ndarray,
+    areas: np.ndarray,
+    *,
+    weighting: bool,
+    thresholds=(),
+    keep_distribution: bool = False,
+) -> BlockPartial:
+    """Reduce one block.
+
+    Parameters
+    ----------
+    unit, pix, cov : ndarray
+        The block's weight entries (sorted by unit), block-local pixel index.
+    values, valid : ndarray
+        Physical values (float64) and valid mask of the block, flattened.
+    areas : ndarray
+        True ground area (m²) of each entry's pixel (same length as ``pix``).
+    weighting : bool
+        Weight by area (``w = c·a``) or not (``w = c``).
+    thresholds : iterable of float
+        Thresholds for ``area_above`` / ``share_above`` (strictly greater).
+    keep_distribution : bool
+        Keep (unit, value, weight) of valid entries for percentiles.
+    """
+    n = unit.size
+    c = cov.astype(np.float64)
+    a = np.asarray(areas, dtype=np.float64)
+    w = c * a if weighting else c
+    is_start = np.empty(n, dtype=bool)
+    is_start[:1] = True
+    np.not_equal(unit[1:], unit[:-1], out=is_start[1:])
+    starts = np.flatnonzero(is_start)
+    units = unit[starts].astype(np.int64)
+    k = units.size
+    local = np.cumsum(is_start) - 1
+
+    v_all = values[pix]
+    ok = valid[pix]
+    ca_km2 = c * a / 1e6
+    w_all = np.bincount(local, weights=w, minlength=k)
+    area_all = np.bincount(local, weights=ca_km2, minlength=k)
+
+    lv = local[ok]
+    v = v_all[ok]
+    wv = w[ok]
+    cv = c[ok]
+    count = np.bincount(lv, minlength=k).astype(np.int64)
+    wsum = np.bincount(lv, weights=wv, minlength=k)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.bincount(lv, weights=wv * v, minlength=k) / wsum
+    dev = v - mean[lv]
+    m2 = np.bincount(lv, weights=wv * dev * dev, minlength=k)
+    csum = np.bincount(lv, weights=cv * v, minlength=k)
+    dens = np.bincount(lv, weights=cv * v * a[ok] / 1e6, minlength=k)
+
+    vmin = np.full(k, np.nan)
+    vmax = np.full(k, np.nan)
+    if lv.size:
+        vs = np.flatnonzero(np.r_[True, lv[1:] != lv[:-1]])
+        present = lv[vs]
+        vmin[present] = np.minimum.reduceat(v, vs)
+        vmax[present] = np.maximum.reduceat(v, vs)
+
+    above_area, above_w = {}, {}
+    for thr in thresholds:
+        hit = v > thr
+        above_area[thr] = np.bincount(lv[hit], weights=ca_km2[ok][hit], minlength=k)
+        above_w[thr] = np.bincount(lv[hit], weights=wv[hit], minlength=k)
+
+    dist = None
+    if keep_distribution:
+        dist = (unit[ok].astype(np.int32), v.copy(), wv.copy())
+    return BlockPartial(
+        units, w_all, area_all, count, wsum, mean, m2, csum, dens, vmin, vmax,
+        above_area, above_w, dist,
+    )
+
+
+@dataclass
+class Accumulator:
+    """Running per-unit statistics over all blocks of one pass."""
+
+    n_units: int
+    thresholds: tuple = ()
+    keep_distribution: bool = False
+    w_all: np.ndarray = field(init=False)
+    area_all: np.ndarray = field(init=False)
+    count: np.ndarray = field(init=False)
+    w: np.ndarray = field(init=False)
+    mean: np.ndarray = field(init=False)
+    m2: np.ndarray = field(init=False)
+    csum: np.ndarray = field(init=False)
+    dens: np.ndarray = field(init=False)
+    vmin: np.ndarray = field(init=False)
+    vmax: np.ndarray = field(init=False)
+    above_area: dict = field(init=False)
+    above_w: dict = field(init=False)
+    dist_parts: list = field(init=False)
+
+    def __post_init__(self) -> None:
+        n = self.n_units
+        self.w_all = np.zeros(n)
+        self.area_all = np.zeros(n)
+        self.count = np.zeros(n, dtype=np.int64)
+        self.w = np.zeros(n)
+        self.mean = np.zeros(n)
+        self.m2 = np.zeros(n)
+        self.csum = np.zeros(n)
+        self.dens = np.zeros(n)
+        self.vmin = np.full(n, np.inf)
+        self.vmax = np.full(n, -np.inf)
+        self.above_area = {t: np.zeros(n) for t in self.thresholds}
+        self.above_w = {t: np.zeros(n) for t in self.thresholds}
+        self.dist_parts = []
+
+    def merge(self, p: BlockPartial) -> None:
+        """Add a block's partial; call in block order for reproducible sums.
+
+        Means and squared deviations are merged with the pairwise update of
+        Chan, Golub & LeVeque (1979), which keeps float64 precision where a
+        raw Σw·v² would cancel (temperatures in kelvin).
+        """
+        u = p.units
+        self.w_all[u] += p.w_all
+        self.area_all[u] += p.area_all
+        self.count[u] += p.count
+        self.csum[u] += p.csum
+        self.dens[u] += p.dens
+        has = p.w > 0
+        uh = u[has]
+        wa = self.w[uh]
+        wb = p.w[has]
+        tot = wa + wb
+        delta = p.mean[has] - self.mean[uh]
+        self.mean[uh] += delta * (wb / tot)
+        self.m2[uh] += p.m2[has] + delta * delta * (wa * wb / tot)
+        self.w[uh] = tot
+        present = p.count > 0
+        up = u[present]
+        self.vmin[up] = np.minimum(self.vmin[up], p.vmin[present])
+        self.vmax[up] = np.maximum(self.vmax[up], p.vmax[present])
+        for t in self.thresholds:
+            self.above_area[t][u] += p.above_area[t]
+            self.above_w[t][u] += p.above_w[t]
+        if self.keep_distribution and p.dist is not None:
+            self.dist_parts.append(p.dist)
+
+    def distribution(self):
+        """All kept (unit, value, weight) triples sorted by unit, then value."""
+        if not self.dist_parts:
+            return (np.zeros(0, np.int32), np.zeros(0), np.zeros(0))
+        u = np.concatenate([d[0] for d in self.dist_parts])
+        v = np.concatenate([d[1] for d in self.dist_parts])
+        w = np.concatenate([d[2] for d in self.dist_parts])
+        order = np.lexsort((v, u))
+        return u[order], v[order], w[order]

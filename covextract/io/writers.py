@@ -1,0 +1,67 @@
+"""Atomic writers: a temporary file in the target folder, fsync, ``os.replace``.
+
+An interrupted run leaves the previous file intact: the new content only
+appears under the final name once it is complete on disk.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+
+from covextract.errors import OutputError
+
+__all__ = ["atomic_write", "atomic_write_text", "atomic_write_bytes"]
+
+
+def _fsync_dir(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def atomic_write(path, write: Callable[[Path], None]) -> Path:
+    """Write ``path`` atomically by calling ``write(tmp_path)``.
+
+    Parameters
+    ----------
+    path : str or Path
+        Final destination; its folder is created if needed.
+    write : callable
+        Writes the complete content to the temporary path it is given.
+    """
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the output folder {path.parent}: {exc}") from exc
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".tmp{path.suffix}", dir=path.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        write(tmp_path)
+        with open(tmp_path, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp_path, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            tmp_path.unlink()
+        raise
+    _fsync_dir(path.parent)
+    return path
+
+
+def atomic_write_bytes(path, data: bytes) -> Path:
+    """Write bytes atomically."""
+    return atomic_write(path, lambda p: p.write_bytes(data))
+
+
+def atomic_write_text(path, text: str) -> Path:
+    """Write UTF-8 text atomically (``\\n`` line endings)."""
+    return atomic_write_bytes(path, text.encode("utf-8"))

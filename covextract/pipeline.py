@@ -1,0 +1,612 @@
+"""From a recipe to covariates: plan, check, compute, write.
+
+The flow runs one way: recipe → study table and units → layers → weights →
+per-unit statistics → columns → outputs. :func:`check_recipe` runs every
+step that does not compute pixels and reports every problem; :func:`run`
+computes and (by default) writes.
+"""
+
+from __future__ import annotations
+
+import difflib
+import warnings
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from covextract.errors import (
+    ColumnCollisionError,
+    CovextractError,
+    OutputError,
+    RecipeError,
+    RecipeProblem,
+    UnitOutsideLayerWarning,
+)
+from covextract.stats.names import StatName, parse_stat
+
+__all__ = ["Plan", "CovariatePlan", "RunResult", "plan_recipe", "check_recipe", "run"]
+
+UNIT_QA_CODES = {
+    "no_location": "the record has no coordinates; values are missing",
+    "suspect_location": "the point sits at (0, 0) or at a sentinel value (99, 999, ...); not used",
+    "no_boundary": "no boundary in the boundary file has this record's id; values are missing",
+    "empty_geometry": "the record's geometry is empty; values are missing",
+    "geometry_repaired": "the record's polygon was invalid and has been repaired (shapely make_valid)",
+}
+
+
+@dataclass
+class CovariatePlan:
+    """One covariate, resolved: its layer, units, statistics and columns."""
+
+    index: int
+    spec: object
+    layer_name: str
+    prefix: str
+    stats: list[StatName]
+    rule: str
+    area_weighting: str
+    threshold: float | None
+    unit_key: tuple
+    columns: list[str]
+    qa_column: str
+
+
+@dataclass
+class Plan:
+    """Everything a run needs, checked, before any pixel is read."""
+
+    recipe: object
+    table: object
+    unit_sets: dict
+    sources: dict
+    covariates: list[CovariatePlan]
+    output_paths: dict
+    problems: list = field(default_factory=list)
+
+
+@dataclass
+class RunResult:
+    """What a run produced."""
+
+    table: pd.DataFrame
+    columns: list[str]
+    codebook: list[dict]
+    outputs: dict
+    summary: dict
+
+
+# --------------------------------------------------------------------- helpers
+def _load(recipe):
+    from covextract.recipe import load_recipe
+
+    if hasattr(recipe, "covariates") and hasattr(recipe, "resolve"):
+        return recipe
+    return load_recipe(recipe)
+
+
+def _radius_spec(buffer_m):
+    """``(buffer_m, radius_column)`` from a recipe value (number or {column})."""
+    if buffer_m is None:
+        return None, None
+    if isinstance(buffer_m, int | float):
+        return float(buffer_m), None
+    col = getattr(buffer_m, "column", None)
+    if col is None and isinstance(buffer_m, dict):
+        col = buffer_m.get("column")
+    return None, col
+
+
+def _unit_key(recipe, cov) -> tuple:
+    if getattr(cov, "buffer_m", None) is not None:
+        b, c = _radius_spec(cov.buffer_m)
+        return ("buffer", b, c)
+    u = recipe.units
+    if u is None:
+        return ("own",)
+    if u.buffer_m is not None:
+        b, c = _radius_spec(u.buffer_m)
+        return ("buffer", b, c)
+    if u.boundaries is not None:
+        return ("boundaries",)
+    if u.at_point is not None:
+        return ("point", u.at_point)
+    return ("own",)
+
+
+def _points(recipe):
+    p = recipe.study.points
+    if p is None:
+        return None
+    return {"x": p.x, "y": p.y, "crs": p.crs}
+
+
+def _build_unit_set(recipe, table, key, boundaries_cache):
+    from covextract.io.tables import read_boundaries
+    from covextract.units import build_units
+
+    kw = {"id_column": recipe.study.id, "points": _points(recipe)}
+    if key[0] == "buffer":
+        kw["buffer_m"], kw["radius_column"] = key[1], key[2]
+    elif key[0] == "boundaries":
+        b = recipe.units.boundaries
+        if "gdf" not in boundaries_cache:
+            boundaries_cache["gdf"] = read_boundaries(
+                recipe.resolve(b.file), id_column=b.id, layer=getattr(b, "layer", None)
+            )
+        kw["boundaries"] = boundaries_cache["gdf"]
+        kw["boundary_id"] = "id"
+        kw["points"] = None
+    elif key[0] == "point":
+        kw["at_point"] = key[1]
+    return build_units(table, **kw)
+
+
+def _output_paths(recipe) -> dict:
+    out = recipe.output
+    table = recipe.resolve(out.table)
+    stem = table.with_suffix("")
+    codebook = recipe.resolve(out.codebook) if out.codebook else Path(f"{stem}_codebook.csv")
+    manifest = recipe.resolve(out.manifest) if out.manifest else Path(f"{stem}_manifest.json")
+    state = recipe.resolve(out.state) if out.state else table.parent / ".covextract-state"
+    return {
+        "table": table,
+        "codebook": codebook,
+        "codebook_md": codebook.with_suffix(".md"),
+        "manifest": manifest,
+        "state": state,
+    }
+
+
+# ------------------------------------------------------------------------ plan
+def plan_recipe(recipe, *, collect: bool = False) -> Plan:
+    """Resolve a recipe into a :class:`Plan`, opening every input but reading no pixels.
+
+    Parameters
+    ----------
+    recipe : path, dict or Recipe
+        The recipe.
+    collect : bool
+        Collect every problem into ``plan.problems`` instead of raising at the
+        first one (what ``covextract check`` does).
+
+    Raises
+    ------
+    CovextractError
+        On the first problem, unless ``collect``.
+    """
+    from covextract.io.rasters import open_layer
+    from covextract.io.tables import read_study_table
+
+    recipe = _load(recipe)
+    problems: list = []
+
+    def problem(exc_or_msg, key=None):
+        if not collect:
+            if isinstance(exc_or_msg, BaseException):
+                raise exc_or_msg
+            raise RecipeError([RecipeProblem(exc_or_msg, key=key, file=_file(recipe))])
+        if isinstance(exc_or_msg, RecipeError):
+            problems.extend(exc_or_msg.problems)
+        else:
+            problems.append(
+                RecipeProblem(str(exc_or_msg), key=key, file=_file(recipe),
+                              line=_line(recipe, key))
+            )
+
+    paths = _output_paths(recipe)
+    table_path = recipe.resolve(recipe.study.table)
+    table = None
+    try:
+        table = read_study_table(table_path, layer=getattr(recipe.study, "layer", None))
+    except CovextractError as exc:
+        problem(exc, "study.table")
+
+    if table is not None:
+        if paths["table"].resolve() == table_path.resolve():
+            problem(
+                OutputError(
+                    f"output.table is the study table itself ({table_path}); covextract never "
+                    "writes over its input. Choose another file name."
+                ),
+                "output.table",
+            )
+        for name in (recipe.study.date,):
+            if name and name not in table.frame.columns:
+                problem(_missing_column(name, table.frame.columns, "study.date"), "study.date")
+        for col in recipe.output.drop:
+            if col not in table.frame.columns:
+                problem(_missing_column(col, table.frame.columns, "output.drop"), "output.drop")
+
+    # units
+    unit_sets: dict = {}
+    boundaries_cache: dict = {}
+    keys = []
+    for i, cov in enumerate(recipe.covariates):
+        k = _unit_key(recipe, cov)
+        if k not in keys:
+            keys.append(k)
+    if table is not None:
+        for k in keys:
+            try:
+                with warnings.catch_warnings(record=collect) as caught:
+                    unit_sets[k] = _build_unit_set(recipe, table, k, boundaries_cache)
+                for w in caught or []:
+                    warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+            except CovextractError as exc:
+                problem(exc, "units")
+                break
+
+    # layers
+    sources = {}
+    used_layers = {c.layer for c in recipe.covariates}
+    for name, layer in recipe.layers.items():
+        if name not in used_layers:
+            continue
+        try:
+            sources[name] = open_layer(
+                recipe.resolve(layer.file),
+                band=layer.band,
+                nodata=layer.nodata,
+                scale=layer.scale,
+                offset=layer.offset,
+                valid_range=layer.valid_range,
+                crs=layer.crs,
+                name=name,
+            )
+        except CovextractError as exc:
+            problem(exc, f"layers.{name}.file")
+
+    # covariates and their columns
+    plans: list[CovariatePlan] = []
+    owner: dict[str, str] = {}
+    existing = set(table.frame.columns) if table is not None else set()
+    for i, cov in enumerate(recipe.covariates):
+        layer = recipe.layers[cov.layer]
+        if getattr(layer, "kind", "continuous") != "continuous":
+            problem(
+                f"layer {cov.layer!r} is {layer.kind}; this version computes continuous "
+                "layers only",
+                f"covariates[{i}].layer",
+            )
+            continue
+        k = _unit_key(recipe, cov)
+        point = k[0] == "point"
+        try:
+            stats = [parse_stat(s, point=point) for s in cov.stats]
+        except ValueError as exc:
+            problem(str(exc), f"covariates[{i}].stats")
+            continue
+        prefix = cov.name or cov.layer
+        rule = k[1] if point else cov.pixels
+        columns = [f"{prefix}_{s.name}" for s in stats]
+        qa_col = f"{prefix}_qa"
+        where = f"covariates[{i}]"
+        for col in columns + [qa_col]:
+            if col in existing:
+                problem(
+                    ColumnCollisionError(
+                        f"covariate {i + 1} (layer {cov.layer!r}) would write column {col!r}, "
+                        "which the study table already has. Add name: to this covariate "
+                        f"(for example name: {prefix}_env) to change its columns."
+                    ),
+                    where,
+                )
+                break
+            if col in owner:
+                problem(
+                    ColumnCollisionError(
+                        f"covariates {owner[col]} and {i + 1} would both write column {col!r}. "
+                        f"Add a distinct name: to covariate {i + 1} (for example name: "
+                        f"{prefix}_{i + 1})."
+                    ),
+                    where,
+                )
+                break
+        for col in columns + [qa_col]:
+            owner.setdefault(col, str(i + 1))
+        plans.append(
+            CovariatePlan(
+                index=i, spec=cov, layer_name=cov.layer, prefix=prefix, stats=stats,
+                rule=rule, area_weighting=_weighting_text(cov.area_weighting),
+                threshold=cov.threshold, unit_key=k, columns=columns, qa_column=qa_col,
+            )
+        )
+
+    # units overlap each layer's extent
+    for cp in plans:
+        us = unit_sets.get(cp.unit_key)
+        src = sources.get(cp.layer_name)
+        if us is None or src is None:
+            continue
+        try:
+            n_out = _count_outside(us, src.grid)
+        except CovextractError as exc:
+            problem(exc, f"covariates[{cp.index}]")
+            continue
+        n_geom = sum(g is not None for g in us.geometry)
+        if n_geom and n_out == n_geom:
+            problem(
+                f"no unit overlaps layer {cp.layer_name!r} (grid bounds {src.grid.bounds} in "
+                f"{src.grid.crs.to_string()}); check the layer file and the study's CRS",
+                f"covariates[{cp.index}].layer",
+            )
+    return Plan(recipe, table, unit_sets, sources, plans, paths, problems)
+
+
+def _weighting_text(value) -> str:
+    if value in (False, "off"):
+        return "off"
+    return "auto"
+
+
+def _file(recipe):
+    return str(recipe.source_file) if getattr(recipe, "source_file", None) else None
+
+
+def _line(recipe, key):
+    if key is None or not hasattr(recipe, "line_of"):
+        return None
+    try:
+        return recipe.line_of(key)
+    except Exception:  # noqa: BLE001 - a missing line number is not an error
+        return None
+
+
+def _missing_column(name, columns, key):
+    hint = difflib.get_close_matches(name, [str(c) for c in columns], n=1)
+    more = f" Did you mean {hint[0]!r}?" if hint else ""
+    from covextract.errors import TableError
+
+    return TableError(
+        f"{key}: column {name!r} is not in the study table (columns: "
+        f"{', '.join(map(str, columns))}).{more}"
+    )
+
+
+def _count_outside(units, grid) -> int:
+    import shapely
+
+    geoms = units.to_crs(grid.crs)
+    arr = np.array([g for g in geoms if g is not None], dtype=object)
+    if arr.size == 0:
+        return 0
+    b = shapely.bounds(arr)
+    gx0, gy0, gx1, gy1 = grid.bounds
+    inside = (b[:, 0] <= gx1) & (b[:, 2] >= gx0) & (b[:, 1] <= gy1) & (b[:, 3] >= gy0)
+    return int((~inside).sum())
+
+
+# ----------------------------------------------------------------------- check
+def check_recipe(recipe) -> list:
+    """Validate a recipe and every input without computing; return all problems.
+
+    An empty list means the recipe can run. Problems are
+    :class:`~covextract.errors.RecipeProblem` objects (``str()`` gives the text).
+    """
+    try:
+        plan = plan_recipe(recipe, collect=True)
+    except RecipeError as exc:
+        return list(exc.problems)
+    return plan.problems
+
+
+# ------------------------------------------------------------------------- run
+def run(recipe, *, write: bool = True, progress: bool | object = False) -> RunResult:
+    """Compute every covariate of a recipe; write the outputs unless ``write=False``.
+
+    Parameters
+    ----------
+    recipe : path, dict or Recipe
+        The recipe (a YAML path, a dict, or a loaded recipe).
+    write : bool
+        Write the table, codebook and manifest (atomically, manifest last).
+    progress : bool or callable
+        ``True`` shows a progress bar on the terminal; a callable receives
+        ``(description, total_blocks)`` and returns an ``advance(n)`` function.
+
+    Returns
+    -------
+    RunResult
+        ``result.table`` is the study table with the new columns appended.
+    """
+    from covextract.engine.cache import WeightCache, weights_key
+    from covextract.engine.zonal import QA_CODES, zonal
+    from covextract.outputs.table import augment_table
+
+    started = datetime.now(timezone.utc)
+    plan = plan_recipe(recipe)
+    recipe = plan.recipe
+    cache = WeightCache(plan.output_paths["state"] if write else None)
+    columns: dict = {}
+    codebook: list[dict] = []
+    qa_counts: dict = {}
+    reporter = _progress_factory(progress)
+    n_missing = {}
+    weights_built = 0
+    for cp in plan.covariates:
+        units = plan.unit_sets[cp.unit_key]
+        src = plan.sources[cp.layer_name]
+        geoms = units.to_crs(src.grid.crs)
+        key = weights_key(src.grid.fingerprint, units.fingerprint(), cp.rule)
+        ws = cache.get(key)
+        if ws is None:
+            from covextract.engine.zonal import build_weights
+
+            ws = build_weights(geoms, src.grid, cp.rule)
+            weights_built += 1
+            if write:
+                cache.put(key, ws)
+        advance = reporter(f"{cp.prefix} ({cp.layer_name})", len(ws.windows))
+        res = zonal(
+            src, geoms, cp.stats, rule=cp.rule, area_weighting=cp.area_weighting,
+            threshold=cp.threshold, weights=ws, progress=advance,
+        )
+        for s, col in zip(cp.stats, cp.columns, strict=True):
+            columns[col] = res.values[s.name]
+        qa = []
+        for unit_codes, zonal_codes in zip(units.qa, res.qa, strict=True):
+            codes = list(dict.fromkeys(list(unit_codes) + list(zonal_codes)))
+            qa.append(";".join(codes))
+        columns[cp.qa_column] = qa
+        outside = sum("outside_layer" in q for q in res.qa)
+        if outside:
+            warnings.warn(
+                f"{outside} of {len(units)} units lie wholly outside layer "
+                f"{cp.layer_name!r}; their {cp.prefix} values are missing (QA code outside_layer)",
+                UnitOutsideLayerWarning,
+                stacklevel=2,
+            )
+        n_missing[cp.prefix] = int(np.sum(res.valid_share == 0))
+        for q in qa:
+            for code in filter(None, q.split(";")):
+                qa_counts[code] = qa_counts.get(code, 0) + 1
+        codebook.extend(_codebook_rows(recipe, cp, units, src, QA_CODES))
+    table = plan.table
+    augmented = augment_table(table.frame, columns, as_text=table.format == "csv")
+    drop = [c for c in recipe.output.drop if c in augmented.columns]
+    written = augmented.drop(columns=drop)
+    outputs = {}
+    if write:
+        outputs = _write_outputs(plan, written, codebook, started)
+    summary = {
+        "units": len(table.frame),
+        "layers": sorted({cp.layer_name for cp in plan.covariates}),
+        "columns": list(columns),
+        "units_without_values": n_missing,
+        "qa_counts": qa_counts,
+        "weights_built": weights_built,
+        "weights_from_cache": cache.hits,
+    }
+    return RunResult(written, list(columns), codebook, outputs, summary)
+
+
+def _progress_factory(progress):
+    if callable(progress):
+        return progress
+    if not progress:
+        return lambda desc, total: None
+    from covextract.cli.progress import rich_progress
+
+    return rich_progress()
+
+
+def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict]:
+    from covextract.outputs.codebook import RULE_TEXT, STAT_DEFINITIONS
+
+    layer = recipe.layers[cp.layer_name]
+    nd = ", ".join(repr(v) for v in src.nodata) or "none declared"
+    nodata_text = (
+        f"stored values {nd}, NaN"
+        + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
+        + " are missing; physical value = stored x "
+        + f"{src.scale!r} + {src.offset!r}, applied before any statistic"
+    )
+    base = {
+        "layer": cp.layer_name,
+        "pixel_rule": RULE_TEXT.get(cp.rule, cp.rule),
+        "area_weighting": (
+            "on (grid pixel area varies)" if cp.area_weighting == "auto" and src.grid.area_varies
+            else ("off" if cp.area_weighting == "off" else "auto: not needed, pixel area constant")
+        ),
+        "unit_shape": units.description,
+        "nodata_handling": nodata_text,
+        "source_file": str(src.path),
+        "source": getattr(layer, "source", None) or "",
+        "version": getattr(layer, "version", None) or "",
+        "citation": getattr(layer, "citation", None) or "",
+        "license": getattr(layer, "license", None) or "",
+    }
+    unit = getattr(layer, "unit", None) or ""
+    rows = []
+    for s, col in zip(cp.stats, cp.columns, strict=True):
+        text = STAT_DEFINITIONS.get(s.kind, s.kind).format(
+            q=_q_text(s.q), threshold=cp.threshold, method=cp.rule
+        )
+        if s.kind in ("count",):
+            u = "pixels"
+        elif s.kind in ("valid_share", "share_above"):
+            u = "share 0-1"
+        elif s.kind in ("area_km2", "area_above"):
+            u = "km2"
+        elif s.kind == "density_total":
+            u = f"{unit} x km2" if unit else "value x km2"
+        elif s.kind == "sum":
+            u = f"{unit} (summed over pixels)" if unit else ""
+        else:
+            u = unit
+        rows.append({**base, "column": col, "statistic": s.name, "definition": text,
+                     "unit_of_measure": u, "qa_codes": ""})
+    codes = {**UNIT_QA_CODES, **qa_codes}
+    rows.append({
+        **base, "column": cp.qa_column, "statistic": "qa",
+        "definition": "reason codes separated by ';', empty when all is well",
+        "unit_of_measure": "text",
+        "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
+    })
+    return rows
+
+
+def _q_text(q):
+    if q is None:
+        return ""
+    return str(int(q)) if float(q).is_integer() else str(q)
+
+
+def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
+    from covextract.outputs.codebook import write_codebook
+    from covextract.outputs.manifest import write_manifest
+    from covextract.outputs.table import table_format, write_table
+
+    paths = plan.output_paths
+    recipe = plan.recipe
+    geometry = crs = None
+    if table_format(paths["table"]) == "gpkg":
+        geometry, crs = _gpkg_geometry(plan)
+    write_table(table, paths["table"], geometry=geometry, crs=crs)
+    write_codebook(codebook, paths["codebook"], markdown_path=paths["codebook_md"],
+                   title=f"Codebook for {paths['table'].name}")
+    inputs = [{"role": "recipe", "path": recipe.source_file}] if recipe.source_file else []
+    inputs.append({"role": "study_table", "path": plan.table.path})
+    if recipe.units is not None and recipe.units.boundaries is not None:
+        inputs.append({"role": "boundaries", "path": recipe.resolve(recipe.units.boundaries.file)})
+    for name, src in plan.sources.items():
+        inputs.append({"role": f"layer:{name}", "path": src.path})
+    layers = {
+        name: {"crs": src.grid.crs.to_string(), "width": src.grid.width,
+               "height": src.grid.height, "transform": list(src.grid.transform)[:6],
+               "area_varies": bool(src.grid.area_varies)}
+        for name, src in plan.sources.items()
+    }
+    outputs = [paths["table"], paths["codebook"], paths["codebook_md"]]
+    write_manifest(paths["manifest"], recipe_fingerprint=recipe.fingerprint,
+                   recipe_file=recipe.source_file, inputs=inputs, outputs=outputs,
+                   layers=layers, started=started)
+    return {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
+
+
+def _gpkg_geometry(plan: Plan):
+    table = plan.table
+    if table.geometry is not None:
+        return list(table.geometry), table.crs
+    recipe = plan.recipe
+    p = recipe.study.points
+    if p is None:
+        return None, None
+    dropped = set(recipe.output.drop) & {p.x, p.y}
+    if dropped:
+        raise OutputError(
+            "a GeoPackage output carries each record's location, but output.drop removes "
+            f"{', '.join(sorted(dropped))}. Write .csv or .parquet to share a table without "
+            "locations."
+        )
+    import shapely
+
+    x = pd.to_numeric(table.frame[p.x], errors="coerce").to_numpy(float)
+    y = pd.to_numeric(table.frame[p.y], errors="coerce").to_numpy(float)
+    pts = [None if not (np.isfinite(a) and np.isfinite(b)) else shapely.Point(a, b)
+           for a, b in zip(x, y, strict=True)]
+    return pts, p.crs

@@ -1,0 +1,167 @@
+"""Statistics of continuous layers from accumulated per-unit sums.
+
+Definitions (``c`` coverage, ``a`` true pixel area, ``w`` the statistical
+weight: ``c·a`` with area weighting, ``c`` without; sums over valid pixels
+unless said otherwise):
+
+==============  ==============================================================
+count           number of pixels with coverage ≥ 1e-10 and a valid value
+valid_share     Σ w (valid) / Σ w (all, including the part off the grid)
+sum             Σ c·v — the right total for per-pixel counts
+density_total   Σ c·v·a in km² — totals of densities (people/km², radiance)
+area_km2        Σ c·a / 10⁶ over the unit's pixels on the grid, valid or not
+mean            Σ w·v / Σ w
+std             √(Σ w·(v − mean)² / Σ w): ddof = 0, weights are areas
+min, max        extreme valid values among covered pixels
+median, qNN     weighted percentile, see :func:`weighted_percentiles`
+area_above      Σ c·a / 10⁶ over valid pixels with v > threshold, km²
+share_above     Σ w (v > threshold) / Σ w (valid)
+==============  ==============================================================
+
+A unit with no valid pixel has count 0, valid_share 0 and every other
+statistic missing (NaN), never 0.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from covextract.engine.reduce import Accumulator
+from covextract.stats.names import StatName
+
+__all__ = ["finalize", "weighted_percentiles"]
+
+
+def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
+    """Weighted percentiles per unit; equal weights give numpy's ``linear`` method.
+
+    The k-th of a unit's n sorted values (cumulative weight ``S_k``, weight
+    ``w_k``) sits at plotting position
+    ``p_k = (S_k − w_k/2 − w_1/2) / (S_n − w_1/2 − w_n/2)``, so ``p_1 = 0``,
+    ``p_n = 1``, and with equal weights ``p_k = (k−1)/(n−1)`` — numpy's
+    default (Hyndman & Fan 1996 type 7). The q-th percentile interpolates
+    linearly between the values whose positions bracket ``q/100``.
+
+    Parameters
+    ----------
+    unit, values, weights : ndarray
+        Triples sorted by unit, then value; weights > 0.
+    n_units : int
+        Number of units.
+    qs : sequence of float
+        Percentiles in [0, 100].
+
+    Returns
+    -------
+    ndarray of shape (len(qs), n_units)
+        NaN for units without values.
+    """
+    qs = np.asarray(qs, dtype=np.float64)
+    out = np.full((qs.size, n_units), np.nan)
+    if values.size == 0:
+        return out
+    unit = np.asarray(unit, dtype=np.int64)
+    is_start = np.r_[True, unit[1:] != unit[:-1]]
+    starts = np.flatnonzero(is_start)
+    ends = np.r_[starts[1:], unit.size] - 1
+    seg = np.cumsum(is_start) - 1
+    cw = np.cumsum(weights)
+    base = np.r_[0.0, cw[starts[1:] - 1]]
+    s_k = cw - base[seg]
+    w1 = weights[starts]
+    wn = weights[ends]
+    s_n = s_k[ends]
+    denom = s_n - w1 / 2 - wn / 2
+    single = denom <= 0
+    safe = np.where(single, 1.0, denom)
+    pos = (s_k - weights / 2 - w1[seg] / 2) / safe[seg]
+    pos = np.clip(pos, 0.0, 1.0)
+    # Make positions globally increasing: segment j occupies [2j, 2j + 1].
+    gpos = pos + 2.0 * seg
+    units_present = unit[starts]
+    for i, q in enumerate(qs / 100.0):
+        target = 2.0 * np.arange(starts.size) + q
+        hi = np.searchsorted(gpos, target, side="left")
+        hi = np.clip(hi, starts, ends)
+        lo = np.clip(hi - 1, starts, ends)
+        p_lo, p_hi = gpos[lo], gpos[hi]
+        span = p_hi - p_lo
+        with np.errstate(invalid="ignore", divide="ignore"):
+            frac = np.where(span > 0, (target - p_lo) / span, 1.0)
+        frac = np.clip(frac, 0.0, 1.0)
+        val = values[lo] + frac * (values[hi] - values[lo])
+        val = np.where(hi == lo, values[hi], val)
+        val = np.where(single, values[starts], val)
+        out[i, units_present] = val
+    return out
+
+
+def finalize(acc: Accumulator, stats: list[StatName], *, offgrid_w: np.ndarray, threshold=None):
+    """Turn an accumulator into one array per requested statistic.
+
+    Parameters
+    ----------
+    acc : Accumulator
+        Merged sums of every block.
+    stats : list of StatName
+        Requested statistics.
+    offgrid_w : ndarray
+        Per unit, the statistical weight of the part off the grid (counts as
+        invalid in ``valid_share``).
+    threshold : float, optional
+        For ``area_above`` / ``share_above``.
+
+    Returns
+    -------
+    dict
+        ``name -> ndarray`` (float64 with NaN for missing; ``count`` int64).
+    """
+    n = acc.n_units
+    has = acc.count > 0
+    nan = np.full(n, np.nan)
+    out = {}
+    denom_all = acc.w_all + offgrid_w
+    with np.errstate(invalid="ignore", divide="ignore"):
+        valid_share = np.where(denom_all > 0, acc.w / denom_all, 0.0)
+    valid_share = np.where(has, np.clip(valid_share, 0.0, 1.0), 0.0)
+    pct = [s for s in stats if s.needs_distribution]
+    pct_values = {}
+    if pct:
+        u, v, w = acc.distribution()
+        table = weighted_percentiles(u, v, w, n, [s.q for s in pct])
+        for s, row in zip(pct, table, strict=True):
+            pct_values[s.name] = row
+    for s in stats:
+        k = s.kind
+        if k == "count":
+            out[s.name] = acc.count.copy()
+        elif k == "valid_share":
+            out[s.name] = valid_share
+        elif k == "sum":
+            out[s.name] = np.where(has, acc.csum, nan)
+        elif k == "density_total":
+            out[s.name] = np.where(has, acc.dens, nan)
+        elif k == "area_km2":
+            out[s.name] = np.where(has, acc.area_all, nan)
+        elif k == "mean":
+            out[s.name] = np.where(has, acc.mean, nan)
+        elif k == "std":
+            with np.errstate(invalid="ignore", divide="ignore"):
+                var = np.where(acc.w > 0, acc.m2 / acc.w, np.nan)
+            out[s.name] = np.where(has, np.sqrt(np.maximum(var, 0.0)), nan)
+        elif k == "min":
+            out[s.name] = np.where(has, acc.vmin, nan)
+        elif k == "max":
+            out[s.name] = np.where(has, acc.vmax, nan)
+        elif k in ("median", "percentile"):
+            out[s.name] = pct_values[s.name]
+        elif k == "area_above":
+            out[s.name] = np.where(has, acc.above_area[threshold], nan)
+        elif k == "share_above":
+            with np.errstate(invalid="ignore", divide="ignore"):
+                out[s.name] = np.where(has, acc.above_w[threshold] / acc.w, nan)
+        elif k == "value":
+            out[s.name] = np.where(has, acc.mean, nan)
+        else:  # pragma: no cover - names are validated by parse_stat
+            raise ValueError(f"unknown statistic {s.name!r}")
+    return out
