@@ -1,0 +1,743 @@
+"""Regenerate the invented demo scenario shipped in ``covextract/demo/data``.
+
+Everything written here is invented: the district, its villages, the survey
+clusters and every raster value. The coordinates lie in open ocean in the
+South Atlantic (about 4.5..5.5 E, 12.5..11.5 S) on purpose, so that no real
+community is described. Do not use any of it for analysis.
+
+Run from the repository root::
+
+    python demo_data/make_demo.py
+
+Options choose other output folders (used to check that two runs give the
+same bytes). The output is deterministic: a fixed seed, no timestamps in the
+GeoTIFF tags, and a fixed GeoPackage change date.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import datetime as dt
+import hashlib
+import math
+from pathlib import Path
+
+import numpy as np
+
+SEED = 20210917
+HERE = Path(__file__).resolve().parent
+REPO = HERE.parent
+DEFAULT_DATA_DIR = REPO / "covextract" / "demo" / "data"
+DEFAULT_RECIPES_DIR = REPO / "recipes"
+
+# Centre of the invented district and the equirectangular factors used to
+# place features in kilometres. The invented fields need no better geodesy;
+# the exact geometry (polygons, raster grids) is computed with pyproj.
+LON0, LAT0 = 5.0, -12.0
+KM_PER_DEG_LON = 111.320 * math.cos(math.radians(12.0))
+KM_PER_DEG_LAT = 110.600
+
+# District and raster extents (degrees). Rasters cover the district with a
+# margin of 0.1 degree (~11 km) so 5 km buffers never fall off a grid.
+DISTRICT = (4.5, -12.5, 5.5, -11.5)
+RASTER_BOUNDS = (4.4, -12.6, 5.6, -11.4)
+
+NDVI_RES_DEG = 0.0009
+LST_RES_M = 250.0
+LIGHTS_RES_M = 500.0
+GPKG_DATE = "2021-12-31T00:00:00Z"
+
+VILLAGE_NAMES = [
+    "Orrowby", "Kelldown", "Marrish Ford", "Quillanmere", "Tobbery Cross",
+    "Vesk Hollow", "Annerlee Quay", "Brisketh", "Cauldry End", "Dunmorrow Scar",
+    "Elvanstock", "Fennimar", "Gorsemantle", "Harrowquist", "Ilsworthy Fen",
+    "Jessimoor Pike", "Lornsgate", "Mabberlode", "Nethercaul", "Olverstane",
+    "Pellimore Reach", "Rusk Elbow", "Sallowmire", "Umbrelleth", "Varrowdene",
+    "Wickering Flats", "Yelvermoss", "Brackwater Bend", "Coldmarrow", "Drossingham Tye",
+    "Eskerfall", "Fallowquist", "Grimsquell", "Hollin Teague", "Inchbrindle",
+    "Jorrick's Landing", "Loamhithe", "Nubbin Lees", "Pottersnare", "Ravelstoke",
+]  # fmt: skip
+
+# The six towns, placed by hand (km from the district centre, east/north);
+# two of them sit on the invented river and are placed on it further down.
+TOWNS = {
+    "Orrowby": (-21.0, 19.0),
+    "Lornsgate": (27.0, 26.0),
+    "Harrowquist": (-31.0, -24.0),
+    "Pellimore Reach": (4.0, -33.0),
+    "Marrish Ford": None,
+    "Brackwater Bend": None,
+}
+
+# Free-text notes for a few villages; one holds the text "NA" so a reader
+# that turns "NA" into a missing value is caught by the demo.
+NOTES = {
+    "Kelldown": "NA",
+    "Marrish Ford": "ferry crossing, visited by boat",
+    "Vesk Hollow": "road washed out; second visit planned",
+    "Jorrick's Landing": "market day Tuesday",
+    "Nubbin Lees": 'headman said "about 40 compounds"',
+    "Eskerfall": "0012 households re-listed",
+}
+
+# River control points (km) from the north-west edge, through the lake, to the
+# south edge; the lake ("Tarrin Water", invented) sits at LAKE_CENTRE.
+RIVER_CONTROL = [
+    (-62.0, 41.0), (-46.0, 31.0), (-33.0, 35.0), (-17.0, 23.0), (-6.0, 9.0),
+    (2.0, 1.0), (9.0, -7.0), (14.0, -13.0), (17.0, -18.0), (22.0, -27.0),
+    (28.0, -40.0), (33.0, -52.0), (36.0, -64.0),
+]  # fmt: skip
+LAKE_CENTRE = (17.0, -18.0)
+LAKE_AXES = (7.5, 4.0)  # semi-axes, km
+LAKE_ANGLE = math.radians(35.0)
+
+
+# ----------------------------------------------------------------- helpers
+def to_km(lon, lat):
+    """Equirectangular kilometres east/north of the district centre."""
+    return (np.asarray(lon) - LON0) * KM_PER_DEG_LON, (np.asarray(lat) - LAT0) * KM_PER_DEG_LAT
+
+
+def to_lonlat(x, y):
+    """Inverse of :func:`to_km`."""
+    return LON0 + np.asarray(x) / KM_PER_DEG_LON, LAT0 + np.asarray(y) / KM_PER_DEG_LAT
+
+
+def gauss_bumps(x, y, cx, cy, sigma, amp):
+    """Sum of isotropic Gaussian bumps at (cx, cy), all in km."""
+    out = np.zeros(np.shape(x), dtype=np.float64)
+    for i in range(len(cx)):
+        d2 = (x - cx[i]) ** 2 + (y - cy[i]) ** 2
+        out += amp[i] * np.exp(-d2 / (2.0 * sigma[i] ** 2))
+    return out
+
+
+def hash_unit(i, j, salt):
+    """Deterministic pseudo-random numbers in [0, 1) from integer cells.
+
+    Integer arithmetic only, so the values are the same on every platform.
+    """
+    i = np.asarray(i, dtype=np.int64).astype(np.uint64)
+    j = np.asarray(j, dtype=np.int64).astype(np.uint64)
+    h = (i * np.uint64(0x9E3779B97F4A7C15)) ^ (j * np.uint64(0xC2B2AE3D27D4EB4F))
+    h ^= np.uint64(salt)
+    h ^= h >> np.uint64(31)
+    h *= np.uint64(0xBF58476D1CE4E5B9)
+    h ^= h >> np.uint64(29)
+    return (h >> np.uint64(11)).astype(np.float64) / float(2**53)
+
+
+def river_polyline():
+    """A meandering river through the control points, densified (km)."""
+    pts = np.array(RIVER_CONTROL, dtype=np.float64)
+    out = []
+    for a, b in zip(pts[:-1], pts[1:], strict=True):
+        seg = b - a
+        length = float(np.hypot(*seg))
+        n = max(2, int(length / 0.5))
+        t = np.linspace(0.0, 1.0, n, endpoint=False)
+        normal = np.array([-seg[1], seg[0]]) / length
+        wiggle = 0.9 * np.sin(2 * np.pi * t * length / 6.0)
+        out.append(a + np.outer(t, seg) + np.outer(wiggle * np.sin(np.pi * t), normal))
+    out.append(pts[-1:])
+    return np.vstack(out)
+
+
+def distance_to_polyline(x, y, line):
+    """Distance (km) from points to a polyline, by a loop over segments."""
+    best = np.full(np.shape(x), np.inf)
+    for (x1, y1), (x2, y2) in zip(line[:-1], line[1:], strict=True):
+        dx, dy = x2 - x1, y2 - y1
+        t = np.clip(((x - x1) * dx + (y - y1) * dy) / (dx * dx + dy * dy), 0.0, 1.0)
+        np.minimum(best, np.hypot(x - (x1 + t * dx), y - (y1 + t * dy)), out=best)
+    return best
+
+
+def lake_radius(x, y):
+    """Normalised elliptical radius of the lake: < 1 inside (wavy shore)."""
+    u = x - LAKE_CENTRE[0]
+    v = y - LAKE_CENTRE[1]
+    c, s = math.cos(LAKE_ANGLE), math.sin(LAKE_ANGLE)
+    a = (u * c + v * s) / LAKE_AXES[0]
+    b = (-u * s + v * c) / LAKE_AXES[1]
+    theta = np.arctan2(b, a)
+    return np.hypot(a, b) / (1.0 + 0.12 * np.sin(3 * theta + 0.7) + 0.06 * np.sin(7 * theta))
+
+
+# ------------------------------------------------------------- the scenario
+class Scenario:
+    """Villages, towns and the smooth fields every raster is drawn from."""
+
+    def __init__(self, rng: np.random.Generator) -> None:
+        self.rng = rng
+        self.river = river_polyline()
+        self._place_villages()
+        # Large-scale vegetation pattern: greener hills in the north-west,
+        # drier plains in the south-east.
+        n = 36
+        self.veg_cx = rng.uniform(-70, 70, n)
+        self.veg_cy = rng.uniform(-70, 70, n)
+        self.veg_s = rng.uniform(6, 22, n)
+        self.veg_a = rng.uniform(-1.0, 1.0, n)
+        # Cloud gaps in the vegetation composite: two placed to cover part of
+        # a village buffer, the others at random.
+        self.ndvi_clouds = self._clouds(["Sallowmire", "Fennimar"], 4, salt=11)
+        self.lst_clouds = self._clouds(["Coldmarrow"], 3, salt=23)
+
+    def _place_villages(self) -> None:
+        rng = self.rng
+        river = self.river
+        seg_len = np.hypot(*np.diff(river, axis=0).T)
+        arc = np.concatenate([[0.0], np.cumsum(seg_len)])
+        positions = {}
+        for name, frac in (("Marrish Ford", 0.30), ("Brackwater Bend", 0.47)):
+            i = int(np.searchsorted(arc, frac * arc[-1]))
+            positions[name] = (float(river[i, 0]) + 0.6, float(river[i, 1]) + 0.4)
+        for name, xy in TOWNS.items():
+            if xy is not None:
+                positions[name] = xy
+        placed = list(positions.values())
+        for name in VILLAGE_NAMES:
+            if name in positions:
+                continue
+            for _ in range(10000):
+                x, y = rng.uniform(-46, 46), rng.uniform(-46, 46)
+                far = all(math.hypot(x - px, y - py) >= 7.0 for px, py in placed)
+                if far and lake_radius(np.array(x), np.array(y)) > 1.45:
+                    break
+            else:
+                raise RuntimeError("could not place every village")
+            positions[name] = (float(x), float(y))
+            placed.append(positions[name])
+        self.positions = positions
+        self.urban = {name for name in TOWNS}
+        hh = {}
+        for name in VILLAGE_NAMES:
+            if name in self.urban:
+                hh[name] = int(rng.integers(900, 4200))
+            else:
+                hh[name] = int(rng.integers(45, 650))
+        self.households = hh
+
+    def _clouds(self, near, n_random, salt):
+        rng = self.rng
+        cx, cy, s = [], [], []
+        for name in near:
+            px, py = self.positions[name]
+            ang = rng.uniform(0, 2 * np.pi)
+            cx.append(px + 1.6 * math.cos(ang))
+            cy.append(py + 1.6 * math.sin(ang))
+            s.append(1.3)
+        cx += list(rng.uniform(-55, 55, n_random))
+        cy += list(rng.uniform(-55, 55, n_random))
+        s += list(rng.uniform(1.5, 3.5, n_random))
+        return np.array(cx), np.array(cy), np.array(s), salt
+
+    # ------------------------------------------------------------ fields
+    def vegetation(self, x, y):
+        raw = gauss_bumps(x, y, self.veg_cx, self.veg_cy, self.veg_s, self.veg_a)
+        trend = -0.006 * (x - y)  # greener to the north-west
+        return np.tanh(0.8 * raw + trend)  # in (-1, 1)
+
+    def riparian(self, x, y):
+        return np.exp(-distance_to_polyline(x, y, self.river) / 1.2)
+
+    def settlement(self, x, y, *, urban_only: bool):
+        """Built-up intensity: ~1 at town centres, small for rural villages."""
+        names = [n for n in VILLAGE_NAMES if n in self.urban or not urban_only]
+        cx = np.array([self.positions[n][0] for n in names])
+        cy = np.array([self.positions[n][1] for n in names])
+        size = np.array([self.households[n] for n in names], dtype=np.float64)
+        sigma = 0.35 + 0.45 * np.sqrt(size / 1000.0)
+        amp = np.minimum(1.0, size / 3000.0)
+        return gauss_bumps(x, y, cx, cy, sigma, amp)
+
+    def cloud_mask(self, x, y, clouds):
+        cx, cy, s, salt = clouds
+        cover = gauss_bumps(x, y, cx, cy, s, np.ones_like(s))
+        # Ragged edges: a coarse hashed texture on a 0.7 km lattice.
+        rough = hash_unit(np.floor(x / 0.7), np.floor(y / 0.7), salt) - 0.5
+        return cover + 0.35 * rough > 0.55
+
+    def field_texture(self, x, y):
+        """A patchwork of fields (~900 m x 600 m), five crop levels in [-1, 1].
+
+        Few discrete levels in blocks of several pixels give within-village
+        spread at a small cost in file size (iid pixel noise does not
+        compress).
+        """
+        c, s = math.cos(0.4), math.sin(0.4)
+        u = (x * c + y * s) / 0.9
+        v = (-x * s + y * c) / 0.6
+        level = np.floor(5.0 * hash_unit(np.floor(u), np.floor(v), 7))
+        return level / 2.0 - 1.0
+
+
+# --------------------------------------------------------------- the grids
+def ndvi_grid():
+    from rasterio.transform import from_origin
+
+    west, south, east, north = RASTER_BOUNDS
+    width = int(math.ceil(round((east - west) / NDVI_RES_DEG, 6)))
+    height = int(math.ceil(round((north - south) / NDVI_RES_DEG, 6)))
+    return from_origin(west, north, NDVI_RES_DEG, NDVI_RES_DEG), width, height
+
+
+def projected_grid(crs, res):
+    """A grid in ``crs`` snapped to ``res`` that covers RASTER_BOUNDS."""
+    from pyproj import Transformer
+    from rasterio.transform import from_origin
+
+    tr = Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+    west, south, east, north = RASTER_BOUNDS
+    t = np.linspace(0.0, 1.0, 101)
+    lons = np.concatenate(
+        [west + (east - west) * t, np.full(101, east), east - (east - west) * t, np.full(101, west)]
+    )
+    lats = np.concatenate(
+        [
+            np.full(101, south),
+            south + (north - south) * t,
+            np.full(101, north),
+            north - (north - south) * t,
+        ]
+    )
+    xs, ys = tr.transform(lons, lats)
+    x0 = math.floor(min(xs) / res) * res
+    y1 = math.ceil(max(ys) / res) * res
+    width = int(math.ceil((max(xs) - x0) / res))
+    height = int(math.ceil((y1 - min(ys)) / res))
+    return from_origin(x0, y1, res, res), width, height
+
+
+def pixel_centres_km(transform, width, height, crs):
+    """Pixel centres of a grid as km east/north of the district centre."""
+    cols, rows = np.meshgrid(np.arange(width) + 0.5, np.arange(height) + 0.5)
+    xs, ys = transform * (cols, rows)
+    if crs != "EPSG:4326":
+        from pyproj import Transformer
+
+        tr = Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+        xs, ys = tr.transform(xs, ys)
+    return to_km(xs, ys)
+
+
+# -------------------------------------------------------------- the rasters
+def make_ndvi(sc, rng):
+    transform, width, height = ndvi_grid()
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    veg = sc.vegetation(x, y)
+    built = sc.settlement(x, y, urban_only=False)
+    ndvi = 0.42 + 0.26 * veg + 0.22 * sc.riparian(x, y)
+    # Fields where vegetation is middling (farmland), not in forest or scrub.
+    farmland = np.abs(veg) < 0.55
+    ndvi += np.where(farmland, 0.05 * sc.field_texture(x, y), 0.0)
+    ndvi -= 0.40 * np.minimum(built, 1.0)
+    ndvi = np.clip(ndvi, 0.02, 0.9)
+    # Open water: negative NDVI, with a narrow wet shore.
+    r = lake_radius(x, y)
+    shore = np.clip((r - 1.0) / 0.08, 0.0, 1.0)
+    water = -0.16 + 0.03 * np.sin(x * 1.7) + rng.normal(0.0, 0.01, ndvi.shape)
+    ndvi = np.where(r < 1.08, shore * ndvi + (1 - shore) * water, ndvi)
+    ndvi = np.clip(ndvi, -0.2, 0.9)
+    stored = np.round(ndvi * 10000.0).astype(np.int16)
+    stored[sc.cloud_mask(x, y, sc.ndvi_clouds)] = -3000
+    return stored, transform, width, height
+
+
+def make_surface_temp(sc, rng, crs):
+    transform, width, height = projected_grid(crs, LST_RES_M)
+    x, y = pixel_centres_km(transform, width, height, crs)
+    veg = sc.vegetation(x, y)
+    lst = 304.0 - 3.0 * veg - 2.5 * sc.riparian(x, y)
+    lst += 3.5 * np.minimum(sc.settlement(x, y, urban_only=True), 1.0)
+    lst -= 0.02 * y  # slightly warmer to the south
+    lst += rng.normal(0.0, 0.25, lst.shape)
+    r = lake_radius(x, y)
+    lst = np.where(r < 1.0, 297.0 + rng.normal(0.0, 0.2, lst.shape), lst)
+    lst = np.clip(lst, 295.0, 310.0)
+    # Round to 1/32 K: exact in float32, so the file compresses well.
+    lst = (np.round(lst * 32.0) / 32.0).astype(np.float32)
+    lst[sc.cloud_mask(x, y, sc.lst_clouds)] = np.nan
+    return lst, transform, width, height
+
+
+def make_night_lights(sc, rng, crs):
+    transform, width, height = projected_grid(crs, LIGHTS_RES_M)
+    x, y = pixel_centres_km(transform, width, height, crs)
+    background = 0.08 + 0.12 * (1.0 + sc.vegetation(x, y) * -0.5)
+    background *= rng.gamma(4.0, 0.25, x.shape)
+    background = np.clip(background, 0.0, 0.5)
+    names = VILLAGE_NAMES
+    cx = np.array([sc.positions[n][0] for n in names])
+    cy = np.array([sc.positions[n][1] for n in names])
+    hh = np.array([sc.households[n] for n in names], dtype=np.float64)
+    urban = np.array([n in sc.urban for n in names])
+    amp = np.where(urban, 14.0 + 46.0 * (hh - 900) / 3300.0, 0.25 + 4.0 * hh / 650.0)
+    sigma = np.where(urban, 0.9 + 0.5 * hh / 4200.0, 0.45)
+    core = gauss_bumps(x, y, cx, cy, sigma, amp)
+    halo = gauss_bumps(x, y, cx, cy, 3.0 * sigma + 1.5, 0.06 * amp)
+    light = background + core + halo
+    light *= rng.uniform(0.93, 1.07, light.shape)
+    light = np.minimum(light, 60.0)
+    # Round to 2**-10 radiance units: exact in float32, compresses well.
+    light = (np.round(light * 1024.0) / 1024.0).astype(np.float32)
+    # A stray-light gap in the south-east margin, outside the district.
+    lon, lat = to_lonlat(x, y)
+    light[(lon > 5.52) & (lat < -12.48)] = -1.0
+    return light, transform, width, height
+
+
+def write_tif(path, array, transform, crs, nodata, *, block, predictor, description, unit):
+    import rasterio
+
+    if path.exists():
+        path.unlink()
+    profile = dict(
+        driver="GTiff",
+        width=array.shape[1],
+        height=array.shape[0],
+        count=1,
+        dtype=array.dtype.name,
+        crs=crs,
+        transform=transform,
+        nodata=nodata,
+        tiled=True,
+        blockxsize=block,
+        blockysize=block,
+        compress="deflate",
+        zlevel=9,
+        predictor=predictor,
+        interleave="band",
+    )
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(array, 1)
+        dst.set_band_description(1, description)
+        dst.update_tags(
+            DEMO="covextract demo scenario (Tamsin Vale district): invented values, "
+            "not for analysis"
+        )
+        dst.units = (unit,)
+
+
+# ------------------------------------------------------ villages & clusters
+def village_table(sc, rng):
+    ids = sorted(rng.choice(np.arange(1, 121), size=len(VILLAGE_NAMES), replace=False))
+    start = dt.date(2021, 1, 11)
+    days = sorted(rng.choice(np.arange(0, 340), size=len(VILLAGE_NAMES), replace=False))
+    order = rng.permutation(len(VILLAGE_NAMES))
+    rows = []
+    for k, idx in enumerate(order):
+        name = VILLAGE_NAMES[idx]
+        x, y = sc.positions[name]
+        lon, lat = to_lonlat(x, y)
+        urban = name in sc.urban
+        rows.append(
+            {
+                "village_id": f"{ids[k]:03d}",
+                "village_name": name,
+                "lon": f"{float(lon):.6f}",
+                "lat": f"{float(lat):.6f}",
+                "settlement": "urban" if urban else "rural",
+                "buffer_radius_m": "2000" if urban else "5000",
+                "visit_date": (start + dt.timedelta(days=int(days[k]))).isoformat(),
+                "households": str(sc.households[name]),
+                "notes": NOTES.get(name, ""),
+            }
+        )
+    return rows
+
+
+def village_polygons(sc, rows, rng):
+    """Irregular star-shaped polygons 1-3 km across around each village."""
+    from pyproj import Geod
+    from shapely.geometry import Polygon
+
+    geod = Geod(ellps="WGS84")
+    polys = {}
+    for row in rows:
+        lon, lat = float(row["lon"]), float(row["lat"])
+        urban = row["settlement"] == "urban"
+        n = int(rng.integers(14, 23))
+        base = rng.uniform(950, 1250) if urban else rng.uniform(550, 950)
+        az = np.sort((np.arange(n) + rng.uniform(-0.3, 0.3, n)) * 360.0 / n) % 360.0
+        az = np.sort(az)
+        phase = rng.uniform(0, 2 * np.pi, 2)
+        wobble = 0.14 * np.sin(2 * np.radians(az) + phase[0])
+        wobble += 0.08 * np.sin(5 * np.radians(az) + phase[1])
+        dist = np.minimum(base * (1.0 + wobble + rng.uniform(-0.06, 0.06, n)), 1480.0)
+        dist = np.maximum(dist, 480.0)
+        plon, plat, _ = geod.fwd(np.full(n, lon), np.full(n, lat), az, dist)
+        ring = [(round(a, 7), round(b, 7)) for a, b in zip(plon, plat, strict=True)]
+        poly = Polygon(ring)
+        if not poly.is_valid:
+            raise RuntimeError(f"invalid polygon for village {row['village_id']}")
+        polys[row["village_id"]] = poly
+    return polys
+
+
+def cluster_table(sc, rng):
+    """Sixty invented survey clusters with their displacement radius."""
+    rows = []
+    towns = sorted(sc.urban)
+    start = dt.date(2021, 5, 10)
+    coords = []
+    for k in range(60):
+        urban = k % 5 == 0  # 12 urban clusters
+        for _ in range(10000):
+            if urban:
+                tx, ty = sc.positions[towns[(k // 5) % len(towns)]]
+                x = tx + rng.uniform(-2.5, 2.5)
+                y = ty + rng.uniform(-2.5, 2.5)
+            else:
+                x, y = rng.uniform(-48, 48), rng.uniform(-48, 48)
+            ok = lake_radius(np.array(x), np.array(y)) > 1.2
+            ok = ok and all(math.hypot(x - a, y - b) >= 1.0 for a, b in coords)
+            if ok:
+                break
+        coords.append((x, y))
+        lon, lat = to_lonlat(x, y)
+        day = start + dt.timedelta(days=int(rng.integers(0, 110)))
+        rows.append(
+            {
+                "cluster_id": f"{k + 1:03d}",
+                "lon": f"{float(lon):.6f}",
+                "lat": f"{float(lat):.6f}",
+                "residence": "urban" if urban else "rural",
+                "radius_m": "2000" if urban else "5000",
+                "interview_date": day.isoformat(),
+            }
+        )
+    return rows
+
+
+def write_csv(path, rows):
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        w = csv.DictWriter(f, fieldnames=list(rows[0]), lineterminator="\n")
+        w.writeheader()
+        w.writerows(rows)
+
+
+def write_gpkg(path, rows, polys, rng):
+    import geopandas as gpd
+    import pyogrio
+
+    if path.exists():
+        path.unlink()
+    # Features in a different order from villages.csv, so a join by position
+    # instead of by id gives visibly wrong results.
+    ids = [row["village_id"] for row in rows]
+    order = rng.permutation(len(ids))
+    ids = [ids[i] for i in order]
+    gdf = gpd.GeoDataFrame({"village_id": ids}, geometry=[polys[i] for i in ids], crs="EPSG:4326")
+    gdf["village_id"] = gdf["village_id"].astype(object)
+    # GDAL stamps gpkg_contents.last_change with the current time unless told.
+    pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": GPKG_DATE})
+    try:
+        pyogrio.write_dataframe(gdf, path, layer="village_areas", driver="GPKG")
+    finally:
+        pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": None})
+
+
+# ---------------------------------------------------------------- recipes
+RECIPE_TEMPLATE = """\
+# covextract recipe: the demo scenario (Tamsin Vale district, invented).
+#
+# EVERY VALUE IN THE DEMO DATA IS INVENTED. The district, its villages and all
+# raster values were made up by demo_data/make_demo.py; the coordinates lie in
+# open ocean on purpose, so no real community is described. Do not use any of
+# it for analysis.
+#
+# A recipe answers three questions: which study records (here: 40 villages),
+# which rasters (vegetation, surface temperature, night lights), and which
+# summaries of each raster to add as new columns. Relative paths are relative
+# to the folder of this file.{header_note}
+
+version: 1                      # recipe format version; always 1 for now
+
+study:
+  # The study table: one row per village. Cells are read as text and written
+  # back unchanged in the output (ids such as "007", the note "NA", dates and
+  # long decimals survive as they are).
+  table: {prefix}villages.csv
+  id: village_id                # unique key of each row, kept as text
+  # Each village is a point given by two columns, in WGS84 longitude/latitude.
+  points: {{x: lon, y: lat, crs: "EPSG:4326"}}
+  date: visit_date              # date of the field visit, written YYYY-MM-DD
+
+units:
+  # The area each village is summarised over: a circle of 2 km radius around
+  # its point. The circle is drawn on the ground (true metres on the WGS84
+  # ellipsoid), whatever the raster's own coordinate system.
+  buffer_m: 2000
+
+layers:
+  # One entry per raster, under a short name of your choice; the name starts
+  # the output columns (ndvi_mean, ...). The three rasters use three different
+  # coordinate systems; the buffers are projected to each raster, the rasters
+  # are never resampled.
+  ndvi:
+    # Vegetation index on a lat/lon grid (EPSG:4326, ~100 m pixels), stored
+    # as NDVI x 10000 in 16-bit integers. The file carries no scale factor,
+    # so the recipe gives it: NDVI = stored value x 0.0001.
+    file: {prefix}ndvi_2021.tif
+    kind: continuous            # a measured quantity (not land-cover classes)
+    scale: 0.0001
+    nodata: -3000               # stored code of cloud gaps: left out, never averaged
+    unit: "NDVI, unitless"      # unit of the physical value, for the codebook
+    # Where the layer comes from, copied into the codebook and manifest.
+    source: "invented demo data (covextract demo scenario)"
+    version: "demo 2021"
+    citation: "invented demo data; not a real product, not for analysis"
+    license: "invented demo data, distributed with covextract (MIT)"
+  surface_temp:
+    # Land surface temperature in kelvin on a UTM grid (EPSG:32731, 250 m).
+    # Gaps are NaN in the file and count as missing; no nodata: key needed.
+    file: {prefix}surface_temp_2021.tif
+    unit: "K"
+    source: "invented demo data (covextract demo scenario)"
+    version: "demo 2021"
+    citation: "invented demo data; not a real product, not for analysis"
+    license: "invented demo data, distributed with covextract (MIT)"
+  lights:
+    # Night-time light radiance on a Web Mercator grid (EPSG:3857, ~500 m
+    # nominal). The file declares its own nodata code (-1).
+    file: {prefix}night_lights_2021.tif
+    unit: "nW/cm2/sr"
+    source: "invented demo data (covextract demo scenario)"
+    version: "demo 2021"
+    citation: "invented demo data; not a real product, not for analysis"
+    license: "invented demo data, distributed with covextract (MIT)"
+
+covariates:
+  # Each entry adds columns named <layer>_<statistic>, plus one <layer>_qa
+  # column that is empty when all is well and otherwise holds short reason
+  # codes (explained in the codebook).
+  - layer: ndvi
+    # mean, std: weighted by the share of each pixel inside the buffer and by
+    # each pixel's true ground area; q90: weighted 90th percentile (the
+    # greenest tenth of the area); valid_share: share of the buffer's area
+    # with a usable value. Two villages lose part of their buffer to clouds.
+    stats: [mean, std, q90, valid_share]
+    pixels: overlap             # overlap (partial pixels count by their share
+                                # inside), center (pixel centre inside) or
+                                # touched (every pixel the buffer touches)
+  - layer: surface_temp
+    stats: [mean, min, max]     # in kelvin; subtract 273.15 for degrees Celsius
+  - layer: lights
+    # density_total: radiance x pixel area (km2), summed over the buffer: a
+    # proxy of settlement size. mean: average radiance. area_above: km2 of the
+    # buffer brighter than the threshold below, which leaves out the dim
+    # background glow.
+    stats: [density_total, mean, area_above]
+    threshold: 1.0              # nW/cm2/sr
+
+output:
+  table: out/villages_covariates.csv   # the study table with the new columns
+  codebook: out/codebook.csv           # one row per new column: what it means
+  # manifest: out/manifest.json        # inputs, versions and fingerprints
+  drop: [lat, lon]                     # leave coordinates out of the shared table
+"""
+
+
+def recipe_text(prefix, header_note=""):
+    return RECIPE_TEMPLATE.format(prefix=prefix, header_note=header_note)
+
+
+# ------------------------------------------------------------------- main
+def build(data_dir: Path, recipes_dir: Path | None) -> dict[str, str]:
+    from pyproj import CRS
+
+    data_dir.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(SEED)
+    sc = Scenario(rng)
+
+    villages = village_table(sc, rng)
+    write_csv(data_dir / "villages.csv", villages)
+    polys = village_polygons(sc, villages, rng)
+    write_gpkg(data_dir / "village_areas.gpkg", villages, polys, rng)
+    write_csv(data_dir / "survey_clusters.csv", cluster_table(sc, rng))
+
+    ndvi, tr, _, _ = make_ndvi(sc, rng)
+    write_tif(
+        data_dir / "ndvi_2021.tif",
+        ndvi,
+        tr,
+        CRS.from_epsg(4326),
+        -3000,
+        block=256,
+        predictor=2,
+        description="NDVI x 10000 (invented)",
+        unit="NDVI x 10000, unitless",
+    )
+    lst, tr, _, _ = make_surface_temp(sc, rng, "EPSG:32731")
+    write_tif(
+        data_dir / "surface_temp_2021.tif",
+        lst,
+        tr,
+        CRS.from_epsg(32731),
+        float("nan"),
+        block=128,
+        predictor=3,
+        description="land surface temperature (invented)",
+        unit="K",
+    )
+    lights, tr, _, _ = make_night_lights(sc, rng, "EPSG:3857")
+    write_tif(
+        data_dir / "night_lights_2021.tif",
+        lights,
+        tr,
+        CRS.from_epsg(3857),
+        -1.0,
+        block=128,
+        predictor=3,
+        description="night-time light radiance (invented)",
+        unit="nW/cm2/sr",
+    )
+
+    (data_dir / "recipe.yaml").write_text(recipe_text(""), encoding="utf-8")
+    if recipes_dir is not None:
+        note = (
+            "\n#\n# This copy lives in recipes/ and reads the demo data shipped in the"
+            "\n# package; it is written by demo_data/make_demo.py from the same text as"
+            "\n# covextract/demo/data/recipe.yaml, so edit the script, not this file."
+            "\n# Run it from the repository root:  covextract run recipes/demo.yaml"
+            "\n# (outputs go to recipes/out/)."
+        )
+        recipes_dir.mkdir(parents=True, exist_ok=True)
+        (recipes_dir / "demo.yaml").write_text(
+            recipe_text("../covextract/demo/data/", note), encoding="utf-8"
+        )
+
+    digests = {}
+    for p in sorted(data_dir.iterdir()):
+        if p.is_file():
+            digests[p.name] = hashlib.sha256(p.read_bytes()).hexdigest()
+    return digests
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument(
+        "--data-dir",
+        type=Path,
+        default=DEFAULT_DATA_DIR,
+        help="where to write the demo data (default: the package's data folder)",
+    )
+    parser.add_argument(
+        "--recipes-dir",
+        type=Path,
+        default=DEFAULT_RECIPES_DIR,
+        help="where to write recipes/demo.yaml (default: the repo's recipes/)",
+    )
+    parser.add_argument("--no-recipes", action="store_true", help="do not write recipes/demo.yaml")
+    args = parser.parse_args(argv)
+    digests = build(args.data_dir, None if args.no_recipes else args.recipes_dir)
+    for name, digest in digests.items():
+        size = (args.data_dir / name).stat().st_size
+        print(f"{digest[:16]}  {size:>9,d}  {name}")
+
+
+if __name__ == "__main__":
+    main()
