@@ -62,7 +62,7 @@ class Grid:
         """``(xmin, ymin, xmax, ymax)`` in the grid's CRS."""
         xs, ys = [], []
         for c, r in ((0, 0), (self.width, 0), (0, self.height), (self.width, self.height)):
-            x, y = self.transform * (c, r)
+            x, y = self.transform @ (c, r)
             xs.append(x)
             ys.append(y)
         return (min(xs), min(ys), max(xs), max(ys))

@@ -850,7 +850,7 @@ def _cross_check(data: dict) -> list[InitErrorDetails]:
         isinstance(table, str)
         and _suffix(table) == ".csv"
         and study.get("points") is None
-        and units_dict.get("reads as boundaries") is None
+        and units_dict.get("boundaries") is None
     ):
         issues.append(
             _issue(
@@ -880,7 +880,7 @@ def _cross_check(data: dict) -> list[InitErrorDetails]:
     out_table = output.get("table") if isinstance(output, dict) else None
     if isinstance(out_table, str):
         inputs = [("study.table", table)]
-        boundaries = units_dict.get("reads as boundaries")
+        boundaries = units_dict.get("boundaries")
         if isinstance(boundaries, dict):
             inputs.append(("units.boundaries.file", boundaries.get("file")))
         for what, path in inputs:
