@@ -21,7 +21,9 @@ __all__ = [
     "GeometryError",
     "OutputError",
     "ColumnCollisionError",
+    "SchedulerError",
     "CovextractWarning",
+    "RemoteSchedulerWarning",
     "UnitOutsideLayerWarning",
     "SuspectLocationWarning",
     "GeometryRepairedWarning",
@@ -119,6 +121,10 @@ class ColumnCollisionError(CovextractError, ValueError):
     """Two covariates, or a covariate and the study table, share a column name."""
 
 
+class SchedulerError(CovextractError, ConnectionError):
+    """The dask scheduler named for the run cannot be reached."""
+
+
 class CovextractWarning(UserWarning):
     """Base class of covextract's warnings."""
 
@@ -141,3 +147,7 @@ class CacheWarning(CovextractWarning):
 
 class LowValidShareWarning(CovextractWarning):
     """Some units have a low share of valid pixels."""
+
+
+class RemoteSchedulerWarning(CovextractWarning):
+    """The dask scheduler is on another machine: unit geometries travel to it."""

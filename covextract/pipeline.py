@@ -395,7 +395,14 @@ def check_recipe(recipe) -> list:
 
 
 # ------------------------------------------------------------------------- run
-def run(recipe, *, write: bool = True, progress: bool | object = False) -> RunResult:
+def run(
+    recipe,
+    *,
+    write: bool = True,
+    progress: bool | object = False,
+    threads: int | None = None,
+    scheduler: str | None = None,
+) -> RunResult:
     """Compute every covariate of a recipe; write the outputs unless ``write=False``.
 
     Parameters
@@ -407,26 +414,51 @@ def run(recipe, *, write: bool = True, progress: bool | object = False) -> RunRe
     progress : bool or callable
         ``True`` shows a progress bar on the terminal; a callable receives
         ``(description, total_blocks)`` and returns an ``advance(n)`` function.
+    threads : int, optional
+        Local threads for block tasks (overrides ``execution.threads``).
+    scheduler : str, optional
+        Address of a running dask.distributed scheduler (``tcp://HOST:PORT``;
+        overrides ``execution.scheduler``). Workers must see the same paths.
 
     Returns
     -------
     RunResult
         ``result.table`` is the study table with the new columns appended.
     """
-    from covextract.engine.cache import WeightCache, weights_key
-    from covextract.engine.zonal import QA_CODES, zonal
-    from covextract.outputs.table import augment_table
+    from covextract.engine.cache import WeightCache
 
     started = datetime.now(timezone.utc)
     plan = plan_recipe(recipe)
     recipe = plan.recipe
     cache = WeightCache(plan.output_paths["state"] if write else None)
+    execution = getattr(recipe, "execution", None)
+    threads = threads if threads is not None else getattr(execution, "threads", None)
+    scheduler = scheduler if scheduler is not None else getattr(execution, "scheduler", None)
+    client = None
+    if scheduler:
+        from covextract.engine.cluster import connect
+
+        client = connect(scheduler)
+    try:
+        return _run_plan(plan, recipe, cache, started, write=write, progress=progress,
+                         threads=threads, client=client)
+    finally:
+        if client is not None:
+            client.close()
+
+
+def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client) -> RunResult:
+    from covextract.engine.cache import weights_key
+    from covextract.engine.zonal import QA_CODES, zonal
+    from covextract.outputs.table import augment_table
+
     columns: dict = {}
     codebook: list[dict] = []
     qa_counts: dict = {}
     reporter = _progress_factory(progress)
     n_missing = {}
     weights_built = 0
+    workers: set = set()
     for cp in plan.covariates:
         units = plan.unit_sets[cp.unit_key]
         src = plan.sources[cp.layer_name]
@@ -444,7 +476,9 @@ def run(recipe, *, write: bool = True, progress: bool | object = False) -> RunRe
         res = zonal(
             src, geoms, cp.stats, rule=cp.rule, area_weighting=cp.area_weighting,
             threshold=cp.threshold, weights=ws, progress=advance,
+            threads=threads, client=client,
         )
+        workers |= res.workers
         for s, col in zip(cp.stats, cp.columns, strict=True):
             columns[col] = res.values[s.name]
         qa = []
@@ -480,6 +514,7 @@ def run(recipe, *, write: bool = True, progress: bool | object = False) -> RunRe
         "qa_counts": qa_counts,
         "weights_built": weights_built,
         "weights_from_cache": cache.hits,
+        "workers": sorted(workers),
     }
     return RunResult(written, list(columns), codebook, outputs, summary)
 

@@ -12,6 +12,12 @@ from covextract.cli.common import DEBUG_HELP, cli_errors
 def run_command(
     recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
+    threads: int = typer.Option(None, "--threads", min=1, help="Local threads (default: one per core)."),
+    scheduler: str = typer.Option(
+        None, "--scheduler",
+        help="Run block tasks on an existing dask.distributed scheduler, tcp://HOST:PORT. "
+        "Workers must see the same file paths.",
+    ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Compute the covariates of RECIPE and write the table, codebook and manifest."""
@@ -19,6 +25,6 @@ def run_command(
         from covextract.cli.summary import print_summary
         from covextract.pipeline import run
 
-        result = run(recipe, write=True, progress=not quiet)
+        result = run(recipe, write=True, progress=not quiet, threads=threads, scheduler=scheduler)
         if not quiet:
             print_summary(result)

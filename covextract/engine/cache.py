@@ -17,14 +17,12 @@ from pathlib import Path
 
 import numpy as np
 
+from covextract.engine.coverage import KERNEL_VERSION
 from covextract.engine.weights import WeightSet
 from covextract.errors import CacheWarning
 from covextract.io.writers import atomic_write_bytes
 
 __all__ = ["KERNEL_VERSION", "weights_key", "WeightCache"]
-
-#: Bump when the coverage kernels change their output.
-KERNEL_VERSION = "1"
 
 
 def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str:
@@ -32,7 +30,7 @@ def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str
     import pyproj
 
     text = "|".join(
-        [KERNEL_VERSION, pyproj.proj_version_str, grid_fingerprint, units_fingerprint, rule]
+        [str(KERNEL_VERSION), pyproj.proj_version_str, grid_fingerprint, units_fingerprint, rule]
     )
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 

@@ -52,6 +52,14 @@ class Grid:
     block_shape: tuple[int, int] = (256, 256)
     _cache: dict = field(default_factory=dict, compare=False, repr=False, hash=False)
 
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state["_cache"] = {}  # PROJ objects stay behind; rebuilt where the grid lands
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+
     @property
     def shape(self) -> tuple[int, int]:
         """``(height, width)``."""

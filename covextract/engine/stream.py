@@ -1,8 +1,19 @@
-"""Streaming a raster through a weight set: each block read once per pass."""
+"""Streaming a raster through a weight set: each block read once per pass.
+
+Blocks are independent dask tasks: read the block, mask it, reduce it to a
+:class:`~covextract.engine.reduce.BlockPartial`. They run on local threads
+by default (GeoTIFF decoding releases the GIL) or on a dask.distributed
+cluster. Tasks are submitted in bounded batches and their partials merged in
+the fixed order of the weight set, so memory stays bounded and the result is
+bit-identical whatever the number of threads or workers.
+"""
 
 from __future__ import annotations
 
+import os
+import time
 from collections.abc import Callable
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -10,7 +21,12 @@ from covextract.engine.grid import Grid
 from covextract.engine.reduce import Accumulator, reduce_block
 from covextract.engine.weights import WeightSet
 
-__all__ = ["stream_pass", "entry_areas"]
+__all__ = ["PassStats", "stream_pass", "entry_areas", "default_threads"]
+
+
+def default_threads() -> int:
+    """Threads used when none are asked for: the machine's cores (at most 8)."""
+    return max(1, min(8, os.cpu_count() or 1))
 
 
 def entry_areas(grid: Grid, window, pix: np.ndarray) -> np.ndarray:
@@ -22,17 +38,58 @@ def entry_areas(grid: Grid, window, pix: np.ndarray) -> np.ndarray:
     return grid.pixel_areas(rows, c0 + pix % w)
 
 
+@dataclass
+class PassStats:
+    """What one pass did: blocks read, seconds spent reading and reducing, workers."""
+
+    blocks: int = 0
+    read_seconds: float = 0.0
+    reduce_seconds: float = 0.0
+    workers: set = field(default_factory=set)
+
+
+def _worker_name() -> str:
+    try:
+        from distributed import get_worker
+
+        return get_worker().address
+    except (ImportError, ValueError):
+        return f"local:{os.getpid()}"
+
+
+def _block_task(source, grid, window, unit, pix, cov, weighting, thresholds, keep):
+    t0 = time.perf_counter()
+    stored = source.read_block(window)
+    t1 = time.perf_counter()
+    values, valid = source.to_values(stored)
+    part = reduce_block(
+        unit,
+        pix,
+        cov,
+        values.ravel(),
+        valid.ravel(),
+        entry_areas(grid, window, pix),
+        weighting=weighting,
+        thresholds=thresholds,
+        keep_distribution=keep,
+    )
+    t2 = time.perf_counter()
+    return part, t1 - t0, t2 - t1, _worker_name()
+
+
 def stream_pass(
     weights: WeightSet,
     grid: Grid,
-    read_block: Callable,
-    to_values: Callable,
+    source,
     *,
     weighting: bool,
     thresholds=(),
     keep_distribution: bool = False,
     progress: Callable | None = None,
-) -> Accumulator:
+    threads: int | None = None,
+    client=None,
+    batch: int | None = None,
+) -> tuple[Accumulator, PassStats]:
     """Read every block that holds weights once and accumulate per-unit sums.
 
     Parameters
@@ -41,10 +98,9 @@ def stream_pass(
         Weights on ``grid``.
     grid : Grid
         The raster's grid.
-    read_block : callable
-        ``window -> stored array`` (one band).
-    to_values : callable
-        ``stored array -> (float64 values, valid mask)``.
+    source : object
+        ``read_block(window) -> stored array`` and ``to_values(stored) ->
+        (float64 values, valid mask)``; must be picklable for a cluster.
     weighting : bool
         Weight means, spreads and percentiles by true pixel area.
     thresholds : tuple of float
@@ -52,7 +108,13 @@ def stream_pass(
     keep_distribution : bool
         Keep valid (unit, value, weight) triples for percentiles.
     progress : callable, optional
-        Called with the number of blocks done after each block.
+        Called with the number of blocks finished.
+    threads : int, optional
+        Local threads (default: :func:`default_threads`); 1 runs inline.
+    client : distributed.Client, optional
+        Run the block tasks on this cluster instead of local threads.
+    batch : int, optional
+        Tasks in flight at once (default 4 per thread or worker thread).
 
     Notes
     -----
@@ -61,23 +123,58 @@ def stream_pass(
     """
     if weights.grid_fingerprint != grid.fingerprint:
         raise ValueError("weights were built for another grid")
-    acc = Accumulator(weights.n_units, tuple(thresholds), keep_distribution)
-    for b in range(len(weights.windows)):
-        window, unit, pix, cov = weights.block(b)
-        stored = read_block(window)
-        values, valid = to_values(stored)
-        part = reduce_block(
-            unit,
-            pix,
-            cov,
-            values.ravel(),
-            valid.ravel(),
-            entry_areas(grid, window, pix),
-            weighting=weighting,
-            thresholds=thresholds,
-            keep_distribution=keep_distribution,
-        )
+    thresholds = tuple(thresholds)
+    acc = Accumulator(weights.n_units, thresholds, keep_distribution)
+    stats = PassStats()
+    n = len(weights.windows)
+    threads = default_threads() if threads is None else max(1, int(threads))
+    args = (weighting, thresholds, keep_distribution)
+
+    def merge(result) -> None:
+        part, t_read, t_reduce, worker = result
         acc.merge(part)
+        stats.blocks += 1
+        stats.read_seconds += t_read
+        stats.reduce_seconds += t_reduce
+        stats.workers.add(worker)
+
+    if client is None and threads == 1:
+        for b in range(n):
+            window, unit, pix, cov = weights.block(b)
+            merge(_block_task(source, grid, window, unit, pix, cov, *args))
+            if progress is not None:
+                progress(1)
+        return acc, stats
+
+    if client is not None:
+        nthreads = sum(client.nthreads().values()) or 1
+        batch = batch or 4 * nthreads
+        for start in range(0, n, batch):
+            futures = []
+            for b in range(start, min(n, start + batch)):
+                window, unit, pix, cov = weights.block(b)
+                futures.append(
+                    client.submit(_block_task, source, grid, window, unit, pix, cov, *args,
+                                  pure=False)
+                )
+            for result in client.gather(futures):
+                merge(result)
+            if progress is not None:
+                progress(len(futures))
+        return acc, stats
+
+    import dask
+
+    batch = batch or 4 * threads
+    task = dask.delayed(_block_task, pure=False)
+    for start in range(0, n, batch):
+        jobs = []
+        for b in range(start, min(n, start + batch)):
+            window, unit, pix, cov = weights.block(b)
+            jobs.append(task(source, grid, window, unit, pix, cov, *args))
+        results = dask.compute(*jobs, scheduler="threads", num_workers=threads)
+        for result in results:
+            merge(result)
         if progress is not None:
-            progress(1)
-    return acc
+            progress(len(jobs))
+    return acc, stats

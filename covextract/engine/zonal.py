@@ -55,6 +55,9 @@ class ZonalResult:
     valid_share: np.ndarray | None = None
     blocks_read: int = 0
     weights_built: bool = False
+    read_seconds: float = 0.0
+    reduce_seconds: float = 0.0
+    workers: set = field(default_factory=set)
 
 
 def build_weights(geoms, grid, rule: str) -> WeightSet:
@@ -84,6 +87,8 @@ def zonal(
     threshold: float | None = None,
     weights: WeightSet | None = None,
     progress=None,
+    threads: int | None = None,
+    client=None,
 ) -> ZonalResult:
     """Compute statistics of ``source`` over each unit.
 
@@ -106,7 +111,11 @@ def zonal(
     weights : WeightSet, optional
         Prebuilt weights (from the cache); built when omitted.
     progress : callable, optional
-        Called with 1 after each block.
+        Called with the number of blocks finished.
+    threads : int, optional
+        Local threads for the block tasks (default: the machine's cores).
+    client : distributed.Client, optional
+        Run the block tasks on a dask.distributed cluster.
     """
     grid = source.grid
     built = weights is None
@@ -123,15 +132,16 @@ def zonal(
 
     from covextract.engine.stream import stream_pass
 
-    acc = stream_pass(
+    acc, pstats = stream_pass(
         weights,
         grid,
-        source.read_block,
-        source.to_values,
+        source,
         weighting=weighting,
         thresholds=thresholds,
         keep_distribution=keep,
         progress=progress,
+        threads=threads,
+        client=client,
     )
     cov_on = weights.coverage_totals()
     if weighting:
@@ -166,7 +176,10 @@ def zonal(
             elif vshare[i] < LOW_VALID_SHARE:
                 codes.append("low_valid")
         qa.append(codes)
-    return ZonalResult(values, qa, vshare, len(weights.windows), built)
+    return ZonalResult(
+        values, qa, vshare, pstats.blocks, built,
+        pstats.read_seconds, pstats.reduce_seconds, pstats.workers,
+    )
 
 
 def _geometry_flags(geoms, grid, n: int):

@@ -1,0 +1,80 @@
+"""The weights cache: reuse, invalidation and corrupt files."""
+
+import numpy as np
+import pytest
+from affine import Affine
+from pyproj import CRS
+from shapely.geometry import box
+
+from covextract.engine.cache import WeightCache, weights_key
+from covextract.engine.grid import Grid
+from covextract.engine.zonal import build_weights
+from covextract.errors import CacheWarning
+
+
+@pytest.fixture
+def grid():
+    return Grid(Affine(1.0, 0, 0, 0, -1.0, 20.0), 20, 20, CRS.from_epsg(32631), (8, 8))
+
+
+def test_round_trip_is_exact(tmp_path, grid):
+    ws = build_weights(np.array([box(1.3, 1.2, 9.7, 14.1), box(5, 5, 19.5, 7.25)], dtype=object), grid, "overlap")
+    cache = WeightCache(tmp_path)
+    key = weights_key(grid.fingerprint, "units-a", "overlap")
+    assert cache.get(key) is None
+    cache.put(key, ws)
+    back = cache.get(key)
+    assert cache.hits == 1
+    assert back.windows == ws.windows and back.rule == "overlap" and back.n_units == 2
+    for name in ("starts", "unit", "pix", "cov", "offgrid"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(ws, name))
+    # stored without pickles
+    with np.load(cache.path(key), allow_pickle=False) as data:
+        assert all(data[k].dtype != object for k in data.files)
+
+
+def test_key_changes_with_grid_units_and_rule(grid):
+    other = Grid(Affine(1.0, 0, 0.5, 0, -1.0, 20.0), 20, 20, CRS.from_epsg(32631), (8, 8))
+    base = weights_key(grid.fingerprint, "u", "overlap")
+    assert base == weights_key(grid.fingerprint, "u", "overlap")
+    assert base != weights_key(other.fingerprint, "u", "overlap")
+    assert base != weights_key(grid.fingerprint, "v", "overlap")
+    assert base != weights_key(grid.fingerprint, "u", "center")
+
+
+def test_corrupt_file_warns_and_is_ignored(tmp_path, grid):
+    cache = WeightCache(tmp_path)
+    key = weights_key(grid.fingerprint, "u", "overlap")
+    cache.path(key).parent.mkdir(parents=True)
+    cache.path(key).write_bytes(b"not a zip archive")
+    with pytest.warns(CacheWarning, match="unreadable"):
+        assert cache.get(key) is None
+
+
+def test_pipeline_second_run_builds_no_weights_and_unit_change_rebuilds(tmp_path):
+    from covextract.demo import lay_out_demo
+    from covextract.pipeline import run
+
+    folder = lay_out_demo(tmp_path / "demo")
+    first = run(folder / "recipe.yaml")
+    assert first.summary["weights_built"] == 3 and first.summary["weights_from_cache"] == 0
+    second = run(folder / "recipe.yaml")
+    assert second.summary["weights_built"] == 0 and second.summary["weights_from_cache"] == 3
+    # move one village by a few hundred metres: its unit set changes, weights are rebuilt
+    csv = folder / "villages.csv"
+    lines = csv.read_text().splitlines()
+    header = lines[0].split(",")
+    i_lon = header.index("lon")
+    cells = lines[1].split(",")
+    cells[i_lon] = f"{float(cells[i_lon]) + 0.004:.6f}"
+    lines[1] = ",".join(cells)
+    csv.write_text("\n".join(lines) + "\n")
+    third = run(folder / "recipe.yaml")
+    assert third.summary["weights_built"] == 3
+    # corrupt every cached file: the next run warns and rebuilds
+    for f in (folder / ".covextract-state" / "weights").glob("*.npz"):
+        f.write_bytes(b"broken")
+    with pytest.warns(CacheWarning):
+        fourth = run(folder / "recipe.yaml")
+    assert fourth.summary["weights_built"] == 3
+    assert fourth.table.equals(third.table)
