@@ -214,6 +214,9 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 ),
                 "output.table",
             )
+        gpkg_problem = _gpkg_problem(recipe, table, paths["table"])
+        if gpkg_problem is not None:
+            problem(gpkg_problem, "output.table")
         for name in (recipe.study.date,):
             if name and name not in table.frame.columns:
                 problem(_missing_column(name, table.frame.columns, "study.date"), "study.date")
@@ -448,8 +451,7 @@ def run(
 
 
 def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client) -> RunResult:
-    from covextract.engine.cache import weights_key
-    from covextract.engine.zonal import QA_CODES, zonal
+    from covextract.engine.zonal import QA_CODES, estimate_entries, zonal_units
     from covextract.outputs.table import augment_table
 
     columns: dict = {}
@@ -463,21 +465,17 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         units = plan.unit_sets[cp.unit_key]
         src = plan.sources[cp.layer_name]
         geoms = units.to_crs(src.grid.crs)
-        key = weights_key(src.grid.fingerprint, units.fingerprint(), cp.rule)
-        ws = cache.get(key)
-        if ws is None:
-            from covextract.engine.zonal import build_weights
-
-            ws = build_weights(geoms, src.grid, cp.rule)
-            weights_built += 1
-            if write:
-                cache.put(key, ws)
-        advance = reporter(f"{cp.prefix} ({cp.layer_name})", len(ws.windows))
-        res = zonal(
+        est = int(estimate_entries(geoms, src.grid).sum())
+        n_blocks = len(src.grid.block_windows())
+        advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
+        res = zonal_units(
             src, geoms, cp.stats, rule=cp.rule, area_weighting=cp.area_weighting,
-            threshold=cp.threshold, weights=ws, progress=advance,
-            threads=threads, client=client,
+            threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
+            progress=advance, threads=threads, client=client,
         )
+        weights_built += res.weights_builds
+        if advance is not None:
+            advance(0, done=True)
         workers |= res.workers
         for s, col in zip(cp.stats, cp.columns, strict=True):
             columns[col] = res.values[s.name]
@@ -500,7 +498,9 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
                 qa_counts[code] = qa_counts.get(code, 0) + 1
         codebook.extend(_codebook_rows(recipe, cp, units, src, QA_CODES))
     table = plan.table
-    augmented = augment_table(table.frame, columns, as_text=table.format == "csv")
+    # Numbers stay numbers in the returned table and in Parquet/GeoPackage outputs;
+    # write_table turns them into round-trip text only for a CSV file.
+    augmented = augment_table(table.frame, columns, as_text=False)
     drop = [c for c in recipe.output.drop if c in augmented.columns]
     written = augmented.drop(columns=drop)
     outputs = {}
@@ -533,7 +533,8 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     from covextract.outputs.codebook import RULE_TEXT, STAT_DEFINITIONS
 
     layer = recipe.layers[cp.layer_name]
-    nd = ", ".join(repr(v) for v in src.nodata) or "none declared"
+    # The file's nodata and the recipe's nodata are often the same code: list it once.
+    nd = ", ".join(repr(v) for v in dict.fromkeys(src.nodata)) or "none declared"
     nodata_text = (
         f"stored values {nd}, NaN"
         + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
@@ -623,21 +624,41 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
     return {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
 
 
+def _gpkg_problem(recipe, table, path) -> OutputError | None:
+    """Why a GeoPackage output cannot be written for this study table, or None.
+
+    Checked while planning, so ``check`` reports it and a run stops before computing.
+    """
+    from covextract.outputs.table import table_format
+
+    if table_format(path) != "gpkg" or table.geometry is not None:
+        return None
+    p = recipe.study.points
+    if p is None:
+        return OutputError(
+            f"output.table {path.name} is a GeoPackage, which needs a geometry for each "
+            "record, but the study table has neither geometries nor study.points. Write "
+            ".csv or .parquet instead."
+        )
+    dropped = [c for c in (p.x, p.y) if c in set(recipe.output.drop)]
+    if dropped:
+        return OutputError(
+            f"output.table {path.name} is a GeoPackage, which carries each record's location, "
+            f"but output.drop removes the coordinate column(s) {', '.join(dropped)}. Write "
+            ".csv or .parquet to share a table without locations, or keep the coordinates."
+        )
+    return None
+
+
 def _gpkg_geometry(plan: Plan):
     table = plan.table
     if table.geometry is not None:
         return list(table.geometry), table.crs
     recipe = plan.recipe
     p = recipe.study.points
-    if p is None:
-        return None, None
-    dropped = set(recipe.output.drop) & {p.x, p.y}
-    if dropped:
-        raise OutputError(
-            "a GeoPackage output carries each record's location, but output.drop removes "
-            f"{', '.join(sorted(dropped))}. Write .csv or .parquet to share a table without "
-            "locations."
-        )
+    error = _gpkg_problem(recipe, table, plan.output_paths["table"])
+    if error is not None:
+        raise error
     import shapely
 
     x = pd.to_numeric(table.frame[p.x], errors="coerce").to_numpy(float)

@@ -6,8 +6,9 @@ from __future__ import annotations
 def rich_progress():
     """Return a progress factory ``(description, total) -> advance(n)``.
 
-    Each call starts a transient bar on stderr that is finished when its
-    total is reached.
+    Each call starts a bar on stderr; its total is an upper bound (the
+    layer's blocks) and ``advance(0, done=True)`` closes it at the blocks
+    actually read.
     """
     from rich.console import Console
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
@@ -32,11 +33,16 @@ def rich_progress():
             progress.update(task, completed=1)
             progress.stop()
 
-        def advance(n: int = 1) -> None:
+        def advance(n: int = 1, done: bool = False) -> None:
+            """Count ``n`` finished blocks; ``done=True`` closes the bar."""
             state["done"] += n
-            progress.update(task, advance=n)
-            if state["done"] >= total:
+            if done:
+                progress.update(task, total=max(state["done"], 1), completed=max(state["done"], 1))
                 progress.stop()
+                return
+            if state["done"] > total:
+                progress.update(task, total=state["done"])
+            progress.update(task, advance=n)
 
         return advance
 

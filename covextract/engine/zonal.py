@@ -18,6 +18,7 @@ from covextract.stats.continuous import finalize
 from covextract.stats.names import StatName
 
 __all__ = [
+    "MAX_ENTRIES",
     "PIXEL_RULES",
     "POINT_METHODS",
     "LOW_VALID_SHARE",
@@ -25,6 +26,8 @@ __all__ = [
     "ZonalResult",
     "build_weights",
     "zonal",
+    "zonal_units",
+    "unit_groups",
 ]
 
 PIXEL_RULES = ("overlap", "center", "touched")
@@ -58,6 +61,8 @@ class ZonalResult:
     read_seconds: float = 0.0
     reduce_seconds: float = 0.0
     workers: set = field(default_factory=set)
+    groups: int = 1
+    weights_builds: int = 0
 
 
 def build_weights(geoms, grid, rule: str) -> WeightSet:
@@ -201,3 +206,134 @@ def _geometry_flags(geoms, grid, n: int):
             (bounds[:, 0] <= gx1) & (bounds[:, 2] >= gx0) & (bounds[:, 1] <= gy1) & (bounds[:, 3] >= gy0)
         )
     return has, meets & has
+
+
+#: Default bound on weight entries held at once (about 12 bytes each, plus
+#: 32 bytes each while they are built and 20 per valid entry for percentiles).
+MAX_ENTRIES = 12_000_000
+
+
+def estimate_entries(geoms, grid) -> np.ndarray:
+    """Upper bound of each unit's weight entries: its bounding box in pixels."""
+    import shapely
+
+    n = len(geoms)
+    est = np.zeros(n)
+    arr = np.array(list(geoms), dtype=object)
+    have = np.array([g is not None and not g.is_empty for g in arr], dtype=bool)
+    if not have.any():
+        return est
+    b = shapely.bounds(arr[have].astype(object))
+    t = grid.transform
+    w = np.abs((b[:, 2] - b[:, 0]) / t.a) + 2
+    h = np.abs((b[:, 3] - b[:, 1]) / t.e) + 2
+    est[have] = np.minimum(w, grid.width + 2) * np.minimum(h, grid.height + 2)
+    return est
+
+
+def unit_groups(geoms, grid, max_entries: int = MAX_ENTRIES) -> list[np.ndarray]:
+    """Split units into spatially compact groups of bounded weight size.
+
+    Units are ordered by the raster block holding their centre (row-major),
+    so consecutive groups touch neighbouring blocks and few blocks are read
+    by more than one group. One group (all units, in order) when they fit.
+    """
+    import shapely
+
+    n = len(geoms)
+    est = estimate_entries(geoms, grid)
+    if est.sum() <= max_entries:
+        return [np.arange(n)]
+    arr = np.array(list(geoms), dtype=object)
+    have = np.array([g is not None and not g.is_empty for g in arr], dtype=bool)
+    key_row = np.full(n, np.inf)
+    key_col = np.full(n, np.inf)
+    if have.any():
+        b = shapely.bounds(arr[have].astype(object))
+        cx, cy = (b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2
+        inv = ~grid.transform
+        col = inv.a * cx + inv.b * cy + inv.c
+        row = inv.d * cx + inv.e * cy + inv.f
+        bh = grid.block_shape[0] or 256
+        key_row[have] = np.floor(row / bh)
+        key_col[have] = col
+    order = np.lexsort((key_col, key_row))
+    groups, current, size = [], [], 0.0
+    for i in order:
+        if current and size + est[i] > max_entries:
+            groups.append(np.array(sorted(current)))
+            current, size = [], 0.0
+        current.append(i)
+        size += est[i]
+    if current:
+        groups.append(np.array(sorted(current)))
+    return groups
+
+
+def zonal_units(
+    source,
+    geoms,
+    stats: list[StatName],
+    *,
+    rule: str = "overlap",
+    area_weighting="auto",
+    threshold: float | None = None,
+    cache=None,
+    units_fingerprint: str | None = None,
+    max_entries: int = MAX_ENTRIES,
+    progress=None,
+    threads: int | None = None,
+    client=None,
+) -> ZonalResult:
+    """:func:`zonal` over many units in bounded groups, with cached weights.
+
+    Memory is bounded by ``max_entries`` weight entries per group rather
+    than by the whole unit set; each group's weights are cached under a key
+    made of the grid, the units' fingerprint, the rule and the group.
+    Results are scattered back in the units' order.
+    """
+    import hashlib
+
+    from covextract.engine.cache import weights_key
+
+    geoms = np.array(list(geoms), dtype=object)
+    n = len(geoms)
+    groups = unit_groups(geoms, source.grid, max_entries)
+    out_values: dict = {}
+    qa: list = [[] for _ in range(n)]
+    vshare = np.zeros(n)
+    total = ZonalResult(values=out_values, qa=qa, valid_share=vshare)
+    built = 0
+    for members in groups:
+        sub = geoms[members]
+        ws = None
+        key = None
+        if cache is not None and units_fingerprint is not None:
+            tag = units_fingerprint
+            if len(groups) > 1:
+                tag += ":" + hashlib.sha256(members.astype(np.int64).tobytes()).hexdigest()[:16]
+            key = weights_key(source.grid.fingerprint, tag, rule)
+            ws = cache.get(key)
+        if ws is None:
+            ws = build_weights(sub, source.grid, rule)
+            built += 1
+            if cache is not None and key is not None:
+                cache.put(key, ws)
+        res = zonal(source, sub, stats, rule=rule, area_weighting=area_weighting,
+                    threshold=threshold, weights=ws, progress=progress, threads=threads,
+                    client=client)
+        for name, arr in res.values.items():
+            if name not in out_values:
+                out_values[name] = np.zeros(n, dtype=arr.dtype) if arr.dtype.kind in "iu" else np.full(n, np.nan)
+            out_values[name][members] = arr
+        for j, i in enumerate(members):
+            qa[i] = res.qa[j]
+        vshare[members] = res.valid_share
+        total.blocks_read += res.blocks_read
+        total.read_seconds += res.read_seconds
+        total.reduce_seconds += res.reduce_seconds
+        total.workers |= res.workers
+    total.weights_built = built > 0
+    total.groups = len(groups)
+    total.weights_builds = built
+    return total

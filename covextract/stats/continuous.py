@@ -61,38 +61,25 @@ def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
     if values.size == 0:
         return out
     unit = np.asarray(unit, dtype=np.int64)
-    is_start = np.r_[True, unit[1:] != unit[:-1]]
-    starts = np.flatnonzero(is_start)
-    ends = np.r_[starts[1:], unit.size] - 1
-    seg = np.cumsum(is_start) - 1
-    cw = np.cumsum(weights)
-    base = np.r_[0.0, cw[starts[1:] - 1]]
-    s_k = cw - base[seg]
-    w1 = weights[starts]
-    wn = weights[ends]
-    s_n = s_k[ends]
-    denom = s_n - w1 / 2 - wn / 2
-    single = denom <= 0
-    safe = np.where(single, 1.0, denom)
-    pos = (s_k - weights / 2 - w1[seg] / 2) / safe[seg]
-    pos = np.clip(pos, 0.0, 1.0)
-    # Make positions globally increasing: segment j occupies [2j, 2j + 1].
-    gpos = pos + 2.0 * seg
-    units_present = unit[starts]
-    for i, q in enumerate(qs / 100.0):
-        target = 2.0 * np.arange(starts.size) + q
-        hi = np.searchsorted(gpos, target, side="left")
-        hi = np.clip(hi, starts, ends)
-        lo = np.clip(hi - 1, starts, ends)
-        p_lo, p_hi = gpos[lo], gpos[hi]
-        span = p_hi - p_lo
-        with np.errstate(invalid="ignore", divide="ignore"):
-            frac = np.where(span > 0, (target - p_lo) / span, 1.0)
-        frac = np.clip(frac, 0.0, 1.0)
-        val = values[lo] + frac * (values[hi] - values[lo])
-        val = np.where(hi == lo, values[hi], val)
-        val = np.where(single, values[starts], val)
-        out[i, units_present] = val
+    starts = np.flatnonzero(np.r_[True, unit[1:] != unit[:-1]])
+    bounds = np.r_[starts, unit.size]
+    frac_q = qs / 100.0
+    # One unit at a time: a unit's percentiles never depend on the other units in
+    # the array (bit-identical whatever the grouping of units).
+    for k in range(starts.size):
+        s0, s1 = bounds[k], bounds[k + 1]
+        v = values[s0:s1]
+        if v.size == 1:
+            out[:, unit[s0]] = v[0]
+            continue
+        w = weights[s0:s1]
+        s_k = np.cumsum(w)
+        denom = s_k[-1] - w[0] / 2 - w[-1] / 2
+        if denom <= 0:
+            out[:, unit[s0]] = v[0]
+            continue
+        pos = np.clip((s_k - w / 2 - w[0] / 2) / denom, 0.0, 1.0)
+        out[:, unit[s0]] = np.interp(frac_q, pos, v)
     return out
 
 

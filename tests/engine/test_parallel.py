@@ -78,3 +78,24 @@ def test_unreachable_scheduler_fails_fast_with_clear_error():
 def test_remote_schedulers_are_told_apart(address, local):
     # no connection is attempted: only the address is inspected
     assert is_local_address(address) is local
+
+
+def test_bounded_unit_groups_give_identical_values(scene, tmp_path):
+    from covextract.engine.cache import WeightCache
+    from covextract.engine.zonal import unit_groups, zonal_units
+
+    path, geoms = scene
+    src = open_layer(path)
+    whole = zonal_units(src, geoms, STATS, threads=1)
+    assert whole.groups == 1
+    groups = unit_groups(geoms, src.grid, max_entries=2000)
+    assert len(groups) > 3
+    assert sorted(np.concatenate(groups).tolist()) == list(range(len(geoms)))
+    cache = WeightCache(tmp_path)
+    split = zonal_units(src, geoms, STATS, max_entries=2000, cache=cache, units_fingerprint="f")
+    assert split.groups == len(groups) and split.weights_builds == len(groups)
+    for s in STATS:
+        np.testing.assert_array_equal(whole.values[s.name], split.values[s.name])
+    assert split.qa == whole.qa
+    again = zonal_units(src, geoms, STATS, max_entries=2000, cache=cache, units_fingerprint="f")
+    assert again.weights_builds == 0 and cache.hits == len(groups)
