@@ -64,6 +64,15 @@ class RasterSource:
     valid_range: tuple[float, float] | None = None
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
 
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state.pop("_local", None)  # dataset handles never travel between processes
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._local = threading.local()
+
     def _dataset(self):
         import rasterio
 
