@@ -57,22 +57,22 @@ def _worker_name() -> str:
         return f"local:{os.getpid()}"
 
 
-def _block_task(source, grid, window, unit, pix, cov, weighting, thresholds, keep):
+def _continuous_reducer(weighting, thresholds, keep):
+    def reduce(unit, pix, cov, values, valid, areas):
+        return reduce_block(
+            unit, pix, cov, values.ravel(), valid.ravel(), areas,
+            weighting=weighting, thresholds=thresholds, keep_distribution=keep,
+        )
+
+    return reduce
+
+
+def _block_task(source, grid, window, unit, pix, cov, reducer):
     t0 = time.perf_counter()
     stored = source.read_block(window)
     t1 = time.perf_counter()
     values, valid = source.to_values(stored)
-    part = reduce_block(
-        unit,
-        pix,
-        cov,
-        values.ravel(),
-        valid.ravel(),
-        entry_areas(grid, window, pix),
-        weighting=weighting,
-        thresholds=thresholds,
-        keep_distribution=keep,
-    )
+    part = reducer(unit, pix, cov, values, valid, entry_areas(grid, window, pix))
     t2 = time.perf_counter()
     return part, t1 - t0, t2 - t1, _worker_name()
 
@@ -89,6 +89,8 @@ def stream_pass(
     threads: int | None = None,
     client=None,
     batch: int | None = None,
+    reducer: Callable | None = None,
+    accumulator=None,
 ) -> tuple[Accumulator, PassStats]:
     """Read every block that holds weights once and accumulate per-unit sums.
 
@@ -115,6 +117,11 @@ def stream_pass(
         Run the block tasks on this cluster instead of local threads.
     batch : int, optional
         Tasks in flight at once (default 4 per thread or worker thread).
+    reducer, accumulator : optional
+        Another reduction: ``reducer(unit, pix, cov, values, valid, areas) ->
+        partial`` (a picklable callable) and an object whose ``merge(partial)``
+        adds it; ``values``/``valid`` are what ``source.to_values`` returns.
+        Default: the continuous statistics of :mod:`covextract.engine.reduce`.
 
     Notes
     -----
@@ -124,11 +131,15 @@ def stream_pass(
     if weights.grid_fingerprint != grid.fingerprint:
         raise ValueError("weights were built for another grid")
     thresholds = tuple(thresholds)
-    acc = Accumulator(weights.n_units, thresholds, keep_distribution)
+    if reducer is None:
+        acc = Accumulator(weights.n_units, thresholds, keep_distribution)
+        reducer = _continuous_reducer(weighting, thresholds, keep_distribution)
+    else:
+        acc = accumulator
     stats = PassStats()
     n = len(weights.windows)
     threads = default_threads() if threads is None else max(1, int(threads))
-    args = (weighting, thresholds, keep_distribution)
+    args = (reducer,)
 
     def merge(result) -> None:
         part, t_read, t_reduce, worker = result

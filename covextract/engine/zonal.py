@@ -63,6 +63,7 @@ class ZonalResult:
     workers: set = field(default_factory=set)
     groups: int = 1
     weights_builds: int = 0
+    unknown_codes: list = field(default_factory=list)
 
 
 def build_weights(geoms, grid, rule: str) -> WeightSet:
@@ -94,6 +95,7 @@ def zonal(
     progress=None,
     threads: int | None = None,
     client=None,
+    categorical: dict | None = None,
 ) -> ZonalResult:
     """Compute statistics of ``source`` over each unit.
 
@@ -121,6 +123,11 @@ def zonal(
         Local threads for the block tasks (default: the machine's cores).
     client : distributed.Client, optional
         Run the block tasks on a dask.distributed cluster.
+    categorical : dict, optional
+        For a categorical layer: ``{"table": ClassTable, "groups": {label:
+        [codes]}, "pairs": [(from, to)], "earlier": source or None}``; then
+        ``stats`` are categorical statistic names (plain strings) and the
+        result's values are keyed by column suffix (``share_forest``).
     """
     grid = source.grid
     built = weights is None
@@ -132,33 +139,52 @@ def zonal(
         weighting = False
     else:
         raise ValueError(f"area_weighting must be 'auto' or 'off', got {area_weighting!r}")
-    thresholds = (threshold,) if threshold is not None else ()
-    keep = any(s.needs_distribution for s in stats)
-
     from covextract.engine.stream import stream_pass
 
-    acc, pstats = stream_pass(
-        weights,
-        grid,
-        source,
-        weighting=weighting,
-        thresholds=thresholds,
-        keep_distribution=keep,
-        progress=progress,
-        threads=threads,
-        client=client,
-    )
     cov_on = weights.coverage_totals()
-    if weighting:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean_area = np.where(cov_on > 0, acc.area_all * 1e6 / cov_on, 0.0)
-        offgrid_w = weights.offgrid * mean_area
+    if categorical is not None:
+        from covextract.engine.categorical import (
+            CategoricalAccumulator,
+            PairedSource,
+            categorical_reducer,
+        )
+        from covextract.stats.categorical import finalize_categorical
+
+        earlier = categorical.get("earlier")
+        table = categorical["table"]
+        pass_source = PairedSource(source, earlier) if earlier is not None else source
+        acc, pstats = stream_pass(
+            weights, grid, pass_source, weighting=weighting, progress=progress,
+            threads=threads, client=client,
+            reducer=categorical_reducer(table, weighting=weighting, paired=earlier is not None),
+            accumulator=CategoricalAccumulator(weights.n_units, table, paired=earlier is not None),
+        )
+        offgrid_w = _offgrid_weight(weights, cov_on, acc.area_all, weighting)
+        values = finalize_categorical(acc, stats, categorical.get("groups") or {},
+                                      offgrid_w=offgrid_w, pairs=categorical.get("pairs") or ())
+        valid_w = acc.table.sum(axis=tuple(range(1, acc.table.ndim)))
+        unknown = sorted(acc.unknown)
     else:
-        offgrid_w = weights.offgrid.copy()
-    values = finalize(acc, stats, offgrid_w=offgrid_w, threshold=threshold)
+        thresholds = (threshold,) if threshold is not None else ()
+        keep = any(s.needs_distribution for s in stats)
+        acc, pstats = stream_pass(
+            weights,
+            grid,
+            source,
+            weighting=weighting,
+            thresholds=thresholds,
+            keep_distribution=keep,
+            progress=progress,
+            threads=threads,
+            client=client,
+        )
+        offgrid_w = _offgrid_weight(weights, cov_on, acc.area_all, weighting)
+        values = finalize(acc, stats, offgrid_w=offgrid_w, threshold=threshold)
+        valid_w = acc.w
+        unknown = []
     denom = acc.w_all + offgrid_w
     with np.errstate(invalid="ignore", divide="ignore"):
-        vshare = np.where((acc.count > 0) & (denom > 0), acc.w / denom, 0.0)
+        vshare = np.where((acc.count > 0) & (denom > 0), valid_w / denom, 0.0)
 
     qa = []
     on_grid = weights.units_on_grid()
@@ -181,10 +207,21 @@ def zonal(
             elif vshare[i] < LOW_VALID_SHARE:
                 codes.append("low_valid")
         qa.append(codes)
-    return ZonalResult(
+    result = ZonalResult(
         values, qa, vshare, pstats.blocks, built,
         pstats.read_seconds, pstats.reduce_seconds, pstats.workers,
     )
+    result.unknown_codes = unknown
+    return result
+
+
+def _offgrid_weight(weights, cov_on, area_all, weighting: bool) -> np.ndarray:
+    """Statistical weight of each unit's off-grid part (its mean on-grid pixel area)."""
+    if not weighting:
+        return weights.offgrid.copy()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_area = np.where(cov_on > 0, area_all * 1e6 / cov_on, 0.0)
+    return weights.offgrid * mean_area
 
 
 def _geometry_flags(geoms, grid, n: int):
@@ -284,6 +321,7 @@ def zonal_units(
     progress=None,
     threads: int | None = None,
     client=None,
+    categorical: dict | None = None,
 ) -> ZonalResult:
     """:func:`zonal` over many units in bounded groups, with cached weights.
 
@@ -321,10 +359,16 @@ def zonal_units(
                 cache.put(key, ws)
         res = zonal(source, sub, stats, rule=rule, area_weighting=area_weighting,
                     threshold=threshold, weights=ws, progress=progress, threads=threads,
-                    client=client)
+                    client=client, categorical=categorical)
+        total.unknown_codes = sorted(set(total.unknown_codes) | set(res.unknown_codes))
         for name, arr in res.values.items():
             if name not in out_values:
-                out_values[name] = np.zeros(n, dtype=arr.dtype) if arr.dtype.kind in "iu" else np.full(n, np.nan)
+                if arr.dtype.kind in "iu":
+                    out_values[name] = np.zeros(n, dtype=arr.dtype)
+                elif arr.dtype.kind == "O":
+                    out_values[name] = np.full(n, None, dtype=object)
+                else:
+                    out_values[name] = np.full(n, np.nan)
             out_values[name][members] = arr
         for j, i in enumerate(members):
             qa[i] = res.qa[j]
