@@ -1,0 +1,1 @@
+"""Derived layers and covariates: band-math indices."""

@@ -1,0 +1,61 @@
+"""A layer computed per pixel from bands of several rasters on one grid."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from covextract.derive.expression import Expression
+from covextract.errors import RasterError
+
+__all__ = ["BandMathSource"]
+
+
+class BandMathSource:
+    """Raster-source protocol (``grid``, ``read_block``, ``to_values``) for an index.
+
+    Each band's scale, offset and nodata are applied first; a pixel is valid
+    when every band it uses is valid and the result is finite (division by
+    zero gives nodata, not inf).
+
+    Parameters
+    ----------
+    bands : dict
+        ``name -> RasterSource``; all on one grid.
+    expression : Expression
+        The checked expression.
+    """
+
+    def __init__(self, bands: dict, expression: Expression) -> None:
+        names = list(bands)
+        if not names:
+            raise RasterError("a band-math layer needs at least one band")
+        first = bands[names[0]]
+        for name in names[1:]:
+            other = bands[name]
+            if not other.grid.same_lattice(first.grid):
+                raise RasterError(
+                    f"bands {names[0]!r} ({first.path}: {first.grid.width}x{first.grid.height}, "
+                    f"{first.grid.crs.to_string()}, transform {tuple(first.grid.transform)[:6]}) "
+                    f"and {name!r} ({other.path}: {other.grid.width}x{other.grid.height}, "
+                    f"{other.grid.crs.to_string()}, transform {tuple(other.grid.transform)[:6]}) "
+                    "are not on the same grid; an index is computed pixel by pixel, so warp "
+                    "them onto one grid first."
+                )
+        self.bands = {n: bands[n] for n in names if n in expression.bands} or dict(bands)
+        self.expression = expression
+        self.grid = first.grid
+        self.path = first.path
+
+    def read_block(self, window):
+        """Stored values of every band used."""
+        return {name: src.read_block(window) for name, src in self.bands.items()}
+
+    def to_values(self, stored):
+        """Index values and validity of a block."""
+        arrays, valid = {}, None
+        for name, src in self.bands.items():
+            v, m = src.to_values(stored[name])
+            arrays[name] = np.where(m, v, np.nan)
+            valid = m if valid is None else valid & m
+        out = self.expression(arrays)
+        return out, valid & np.isfinite(out)
