@@ -235,10 +235,13 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     if table is not None:
         for k in keys:
             try:
-                with warnings.catch_warnings(record=collect) as caught:
+                # Record the unit builder's warnings and re-emit them at the caller's
+                # line, so they point at user code and each filter applies once there.
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always")
                     unit_sets[k] = _build_unit_set(recipe, table, k, boundaries_cache)
-                for w in caught or []:
-                    warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+                for w in caught:
+                    warnings.warn(w.message, w.category, stacklevel=_user_stacklevel())
             except CovextractError as exc:
                 problem(exc, "units")
                 break
@@ -338,6 +341,24 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 f"covariates[{cp.index}].layer",
             )
     return Plan(recipe, table, unit_sets, sources, plans, paths, problems)
+
+
+def _user_stacklevel() -> int:
+    """``stacklevel`` for :func:`warnings.warn` naming the first frame outside covextract.
+
+    Counted from the function that calls this one (level 1), so a warning raised
+    deep inside a run points at the user's ``run(...)`` or ``check_recipe(...)`` line.
+    """
+    import os
+    import sys
+
+    package = os.path.dirname(os.path.abspath(__file__)) + os.sep
+    frame = sys._getframe(1)
+    level = 1
+    while frame is not None and os.path.abspath(frame.f_code.co_filename).startswith(package):
+        frame = frame.f_back
+        level += 1
+    return level
 
 
 def _weighting_text(value) -> str:
@@ -490,7 +511,7 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
                 f"{outside} of {len(units)} units lie wholly outside layer "
                 f"{cp.layer_name!r}; their {cp.prefix} values are missing (QA code outside_layer)",
                 UnitOutsideLayerWarning,
-                stacklevel=2,
+                stacklevel=_user_stacklevel(),
             )
         n_missing[cp.prefix] = int(np.sum(res.valid_share == 0))
         for q in qa:

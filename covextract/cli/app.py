@@ -30,16 +30,25 @@ app.command("describe")(_describe.describe_command)
 app.command("demo")(_demo.demo_command)
 
 
-@app.callback()
-def _main(
-    version: bool = typer.Option(False, "--version", help="Print versions and exit.", is_eager=True),
-) -> None:
-    if version:
+def _print_versions(value: bool) -> None:
+    # A parameter callback, not the group callback: click runs it while parsing,
+    # so ``covextract --version`` works without a command.
+    if value:
         from covextract.outputs.manifest import package_versions
 
         for name, value in package_versions().items():
             typer.echo(f"{name}: {value}")
         raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: bool = typer.Option(
+        False, "--version", help="Print versions and exit.", is_eager=True,
+        callback=_print_versions,
+    ),
+) -> None:
+    """Environmental covariates from satellite rasters, summarised over study units."""
 
 
 def main() -> None:

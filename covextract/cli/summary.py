@@ -39,7 +39,9 @@ def print_summary(result, *, max_rows: int = 8) -> None:
     if len(value_cols) > len(shown):
         console.print(f"... and {len(value_cols) - len(shown)} more columns")
     for name, path in result.outputs.items():
-        console.print(f"{name}: {path}")
+        # soft_wrap: a path is never broken across lines, even when stdout is a pipe
+        # (rich would otherwise fold it at 80 columns).
+        console.print(f"{name}: {path}", soft_wrap=True, markup=False, highlight=False)
 
 
 def _fmt(v) -> str:

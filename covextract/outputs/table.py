@@ -86,9 +86,10 @@ def write_table(frame: pd.DataFrame, path, *, geometry=None, crs=None) -> Path:
     path = Path(path)
 
     if fmt == "csv":
+        text = _csv_text(frame)
 
         def write(tmp: Path) -> None:
-            frame.to_csv(tmp, index=False, lineterminator="\n", encoding="utf-8")
+            text.to_csv(tmp, index=False, lineterminator="\n", encoding="utf-8")
 
     elif fmt == "parquet":
 
@@ -106,6 +107,27 @@ def write_table(frame: pd.DataFrame, path, *, geometry=None, crs=None) -> Path:
         gdf = gpd.GeoDataFrame(frame.copy(), geometry=list(geometry), crs=crs)
 
         def write(tmp: Path) -> None:
-            gdf.to_file(tmp, driver="GPKG", engine="pyogrio")
+            # The layer is named after the final file: GDAL would derive it from the
+            # temporary name, whose dots it refuses in a layer name.
+            gdf.to_file(tmp, driver="GPKG", engine="pyogrio", layer=path.stem)
 
     return atomic_write(path, write)
+
+
+def _csv_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """Numeric columns as shortest round-trip text (:func:`format_number`), others as they are.
+
+    Text columns (every column of a CSV study table) pass through untouched, so
+    the user's cells are written back verbatim.
+    """
+    out = {}
+    for name in frame.columns:
+        col = frame[name]
+        if pd.api.types.is_bool_dtype(col.dtype):
+            out[name] = col
+        elif pd.api.types.is_float_dtype(col.dtype) or pd.api.types.is_integer_dtype(col.dtype):
+            values = col.astype(object).where(col.notna(), None)
+            out[name] = pd.Series([format_number(v) for v in values], index=col.index, dtype=object)
+        else:
+            out[name] = col
+    return pd.DataFrame(out, index=frame.index, columns=frame.columns)

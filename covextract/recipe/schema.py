@@ -79,7 +79,11 @@ RECIPE_VERSION = 1
 #: Layer names, covariate names and class labels become parts of column names.
 NAME_PATTERN = r"^[a-z][a-z0-9_]*$"
 #: Statistics of categorical layers (``share`` gives one column per class or group).
-CATEGORICAL_STATS = ("share", "dominant", "classes_present", "shannon")
+CATEGORICAL_STATS = (
+    "share", "dominant", "classes_present", "shannon", "valid_share", "transition", "net_change",
+)
+#: Categorical statistics that compare with an earlier layer (``since:``).
+CHANGE_STATS = ("transition", "net_change")
 #: File types a study table may have (lower-case suffixes).
 STUDY_TABLE_SUFFIXES = (".csv", ".parquet", ".gpkg", ".geojson", ".shp")
 #: File types a boundaries file may have.
@@ -625,6 +629,12 @@ class Covariate(_Model):
     threshold : float, optional
         Threshold of ``area_above`` and ``share_above``, in the layer's
         physical unit (after scale and offset).
+    since : str, optional
+        Categorical layers: the earlier layer (same grid) that ``transition``
+        and ``net_change`` compare with.
+    pairs : list of [from, to], optional
+        Class or group labels of the transitions to report (``any`` as
+        ``from``: any other class).
     """
 
     layer: str
@@ -634,6 +644,8 @@ class Covariate(_Model):
     buffer_m: BufferSpec | None = None
     name: Name | None = None
     threshold: Finite | None = None
+    since: Name | None = None
+    pairs: list[Annotated[list[Name], Field(min_length=2, max_length=2)]] | None = None
 
 
 class Output(_Model):
@@ -825,6 +837,70 @@ def _check_covariate(
     return issues
 
 
+def _labels_of(spec: Any) -> set:
+    if not isinstance(spec, dict):
+        return set()
+    labels = {str(v) for v in (spec.get("classes") or {}).values()}
+    labels |= {str(g) for g in (spec.get("groups") or {})}
+    return labels | {"other"}
+
+
+def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
+    """``since:`` / ``pairs:`` and the statistics that need them."""
+    issues: list[InitErrorDetails] = []
+    loc = ("covariates", i)
+    stats = cov.get("stats") if isinstance(cov.get("stats"), list) else []
+    wants = [s for s in stats if s in CHANGE_STATS]
+    since = cov.get("since")
+    pairs = cov.get("pairs")
+    layer = cov.get("layer")
+    spec = layers.get(layer) if isinstance(layer, str) else None
+    kind = spec.get("kind", "continuous") if isinstance(spec, dict) else None
+    if wants and since is None:
+        issues.append(_issue(loc + ("since",), f"statistic {wants[0]} compares with an earlier "
+                             "layer: add since: <name of the earlier categorical layer>"))
+    if since is not None:
+        if kind is not None and kind != "categorical":
+            issues.append(_issue(loc + ("since",), "since: is for categorical layers only", since))
+        if isinstance(since, str) and since not in layers:
+            issues.append(_issue(loc + ("since",), f"unknown layer {since!r}{_hint(since, layers)}",
+                                 since))
+        elif isinstance(since, str):
+            other = layers[since]
+            if isinstance(other, dict) and other.get("kind", "continuous") != "categorical":
+                issues.append(_issue(loc + ("since",), f"layer {since!r} is not categorical; "
+                                     "transitions compare two categorical layers", since))
+            elif isinstance(spec, dict) and isinstance(other, dict) and (
+                (spec.get("classes") or {}) != (other.get("classes") or {})
+            ):
+                issues.append(_issue(loc + ("since",), f"layers {layer!r} and {since!r} have "
+                                     "different class tables; transitions need the same classes",
+                                     since))
+        if not wants:
+            issues.append(_issue(loc + ("since",), "since: is only used by transition and "
+                                 "net_change; add one of them to stats or remove since", since))
+    if "transition" in stats and not pairs:
+        issues.append(_issue(loc + ("pairs",), "statistic transition needs pairs: [[from, to], "
+                             "...] naming classes or groups (from may be any)"))
+    if pairs and "transition" not in stats:
+        issues.append(_issue(loc + ("pairs",), "pairs: is only used by transition", pairs))
+    if isinstance(pairs, list) and isinstance(spec, dict):
+        labels = _labels_of(spec)
+        for j, pair in enumerate(pairs):
+            if not (isinstance(pair, list) and len(pair) == 2):
+                continue
+            for k, label in enumerate(pair):
+                if not isinstance(label, str):
+                    continue
+                if label == "any" and k == 0:
+                    continue
+                if label not in labels:
+                    issues.append(_issue(loc + ("pairs", j, k), f"{label!r} is not a class or "
+                                         f"group of layer {layer!r}{_hint(label, labels)}; known: "
+                                         + ", ".join(sorted(labels)), label))
+    return issues
+
+
 def _cross_check(data: dict) -> list[InitErrorDetails]:
     issues: list[InitErrorDetails] = []
     study = data.get("study") if isinstance(data.get("study"), dict) else {}
@@ -843,6 +919,7 @@ def _cross_check(data: dict) -> list[InitErrorDetails]:
         for i, cov in enumerate(covariates):
             if isinstance(cov, dict):
                 issues += _check_covariate(i, cov, kinds, point_units, units_dict.get("at_point"))
+                issues += _check_change(i, cov, layers if isinstance(layers, dict) else {})
 
     table = study.get("table")
     has_shape = any(units_dict.get(k) is not None for k in _SHAPE_KEYS)
