@@ -29,13 +29,10 @@ from covextract.stats.names import StatName, parse_stat
 
 __all__ = ["Plan", "CovariatePlan", "RunResult", "plan_recipe", "check_recipe", "run"]
 
-UNIT_QA_CODES = {
-    "no_location": "the record has no coordinates; values are missing",
-    "suspect_location": "the point sits at (0, 0) or at a sentinel value (99, 999, ...); not used",
-    "no_boundary": "no boundary in the boundary file has this record's id; values are missing",
-    "empty_geometry": "the record's geometry is empty; values are missing",
-    "geometry_repaired": "the record's polygon was invalid and has been repaired (shapely make_valid)",
-}
+def _unit_qa_codes() -> dict:
+    from covextract.units.build import QA_CODES
+
+    return QA_CODES
 
 
 @dataclass
@@ -571,7 +568,7 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         ),
         "unit_shape": units.description,
         "nodata_handling": nodata_text,
-        "source_file": str(src.path),
+        "source_file": _shareable_path(src.path, recipe),
         "source": getattr(layer, "source", None) or "",
         "version": getattr(layer, "version", None) or "",
         "citation": getattr(layer, "citation", None) or "",
@@ -597,7 +594,7 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
             u = unit
         rows.append({**base, "column": col, "statistic": s.name, "definition": text,
                      "unit_of_measure": u, "qa_codes": ""})
-    codes = {**UNIT_QA_CODES, **qa_codes}
+    codes = {**_unit_qa_codes(), **qa_codes}
     rows.append({
         **base, "column": cp.qa_column, "statistic": "qa",
         "definition": "reason codes separated by ';', empty when all is well",
@@ -605,6 +602,17 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
     })
     return rows
+
+
+def _shareable_path(path, recipe) -> str:
+    """``path`` relative to the recipe's folder when inside it (no local folder names)."""
+    import os
+
+    try:
+        rel = os.path.relpath(Path(path).resolve(), Path(recipe.base_dir).resolve())
+    except ValueError:
+        return str(path)
+    return str(path) if rel.startswith("..") else rel
 
 
 def _q_text(q):

@@ -3,7 +3,7 @@
 A :class:`WeightSet` is the sparse matrix ``W[unit, pixel]`` stored as
 entries sorted by block, then unit: ``unit`` (int32), ``pix`` (int32 pixel
 index *local to its block*, so grids of more than 2³¹ pixels never overflow)
-and ``cov`` (float32 coverage). ``starts[b]:starts[b+1]`` are the entries of
+and ``cov`` (float64 coverage, so weighted values keep full precision). ``starts[b]:starts[b+1]`` are the entries of
 block ``windows[b]``. Blocks without entries are left out, so they are never
 read.
 """
@@ -37,7 +37,7 @@ class WeightSet:
         Offsets of each block's entries; length ``len(windows) + 1``.
     unit, pix : ndarray of int32
         Unit index and block-local pixel index (``row * cols + col`` in the block).
-    cov : ndarray of float32
+    cov : ndarray of float64
         Coverage weight of each entry, in (0, 1].
     offgrid : ndarray of float64
         Per unit, the coverage that falls outside the grid (pixel units).
@@ -99,7 +99,7 @@ class WeightSet:
             starts=np.asarray(arrays["starts"], dtype=np.int64),
             unit=np.asarray(arrays["unit"], dtype=np.int32),
             pix=np.asarray(arrays["pix"], dtype=np.int32),
-            cov=np.asarray(arrays["cov"], dtype=np.float32),
+            cov=np.asarray(arrays["cov"], dtype=np.float64),
             offgrid=np.asarray(arrays["offgrid"], dtype=np.float64),
         )
 
@@ -147,6 +147,6 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         starts=starts,
         unit=np.asarray(coverage.unit, dtype=np.int32)[order],
         pix=pix.astype(np.int32),
-        cov=np.asarray(coverage.weight, dtype=np.float32)[order],
+        cov=np.asarray(coverage.weight, dtype=np.float64)[order],
         offgrid=np.asarray(coverage.offgrid, dtype=np.float64),
     )

@@ -17,6 +17,12 @@ from covextract.errors import OutputError
 __all__ = ["atomic_write", "atomic_write_text", "atomic_write_bytes"]
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _fsync_dir(folder: Path) -> None:
     with contextlib.suppress(OSError):
         fd = os.open(folder, os.O_RDONLY)
@@ -48,6 +54,8 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
         write(tmp_path)
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
+        # mkstemp creates 0600; give the file the mode a plain open() would (umask)
+        os.chmod(tmp_path, 0o666 & ~_umask())
         os.replace(tmp_path, path)
     except BaseException:
         with contextlib.suppress(OSError):
