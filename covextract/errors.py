@@ -24,6 +24,7 @@ __all__ = [
     "SchedulerError",
     "CovextractWarning",
     "RemoteSchedulerWarning",
+    "UnknownClassWarning",
     "UnitOutsideLayerWarning",
     "SuspectLocationWarning",
     "GeometryRepairedWarning",
@@ -151,3 +152,7 @@ class LowValidShareWarning(CovextractWarning):
 
 class RemoteSchedulerWarning(CovextractWarning):
     """The dask scheduler is on another machine: unit geometries travel to it."""
+
+
+class UnknownClassWarning(CovextractWarning):
+    """A categorical layer holds codes that are not in its class table."""

@@ -24,6 +24,7 @@ from covextract.errors import (
     RecipeError,
     RecipeProblem,
     UnitOutsideLayerWarning,
+    UnknownClassWarning,
 )
 from covextract.stats.names import StatName, parse_stat
 
@@ -50,6 +51,7 @@ class CovariatePlan:
     unit_key: tuple
     columns: list[str]
     qa_column: str
+    categorical: dict | None = None
 
 
 @dataclass
@@ -246,6 +248,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     # layers
     sources = {}
     used_layers = {c.layer for c in recipe.covariates}
+    used_layers |= {c.since for c in recipe.covariates if getattr(c, "since", None)}
     for name, layer in recipe.layers.items():
         if name not in used_layers:
             continue
@@ -269,23 +272,33 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     existing = set(table.frame.columns) if table is not None else set()
     for i, cov in enumerate(recipe.covariates):
         layer = recipe.layers[cov.layer]
-        if getattr(layer, "kind", "continuous") != "continuous":
-            problem(
-                f"layer {cov.layer!r} is {layer.kind}; this version computes continuous "
-                "layers only",
-                f"covariates[{i}].layer",
-            )
-            continue
         k = _unit_key(recipe, cov)
         point = k[0] == "point"
-        try:
-            stats = [parse_stat(s, point=point) for s in cov.stats]
-        except ValueError as exc:
-            problem(str(exc), f"covariates[{i}].stats")
-            continue
+        categorical = None
+        if getattr(layer, "kind", "continuous") == "categorical":
+            if point:
+                problem(
+                    f"layer {cov.layer!r} holds class codes; class shares need an area: give "
+                    "this covariate a buffer_m, or use buffers or boundaries as units",
+                    f"covariates[{i}].layer",
+                )
+                continue
+            categorical = _categorical_config(cov, layer, sources, problem, i)
+            if categorical is None:
+                continue
+            stats = categorical["columns"]
+        else:
+            try:
+                stats = [parse_stat(s, point=point) for s in cov.stats]
+            except ValueError as exc:
+                problem(str(exc), f"covariates[{i}].stats")
+                continue
         prefix = cov.name or cov.layer
         rule = k[1] if point else cov.pixels
-        columns = [f"{prefix}_{s.name}" for s in stats]
+        if categorical is not None:
+            columns = [f"{prefix}_{suffix}" for suffix, _ in stats]
+        else:
+            columns = [f"{prefix}_{s.name}" for s in stats]
         qa_col = f"{prefix}_qa"
         where = f"covariates[{i}]"
         for col in columns + [qa_col]:
@@ -316,6 +329,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 index=i, spec=cov, layer_name=cov.layer, prefix=prefix, stats=stats,
                 rule=rule, area_weighting=_weighting_text(cov.area_weighting),
                 threshold=cov.threshold, unit_key=k, columns=columns, qa_column=qa_col,
+                categorical=categorical,
             )
         )
 
@@ -356,6 +370,34 @@ def _user_stacklevel() -> int:
         frame = frame.f_back
         level += 1
     return level
+
+
+def _categorical_config(cov, layer, sources, problem, i):
+    """Class table, groups, pairs and earlier layer of a categorical covariate."""
+    from covextract.engine.categorical import ClassTable, PairedSource
+    from covextract.errors import RasterError
+    from covextract.stats.categorical import categorical_columns
+
+    table = ClassTable.from_mapping(layer.classes or {})
+    groups = {g: list(codes) for g, codes in (layer.groups or {}).items()}
+    pairs = [tuple(p) for p in (cov.pairs or [])]
+    earlier = None
+    if getattr(cov, "since", None):
+        later_src, earlier = sources.get(cov.layer), sources.get(cov.since)
+        if later_src is not None and earlier is not None:
+            try:
+                PairedSource(later_src, earlier)
+            except RasterError as exc:
+                problem(exc, f"covariates[{i}].since")
+                return None
+    return {
+        "table": table,
+        "groups": groups,
+        "pairs": pairs,
+        "since": getattr(cov, "since", None),
+        "earlier": earlier,
+        "columns": categorical_columns(cov.stats, table, groups, pairs),
+    }
 
 
 def _weighting_text(value) -> str:
@@ -487,16 +529,26 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         n_blocks = len(src.grid.block_windows())
         advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
         res = zonal_units(
-            src, geoms, cp.stats, rule=cp.rule, area_weighting=cp.area_weighting,
+            src, geoms, list(cp.spec.stats) if cp.categorical is not None else cp.stats,
+            rule=cp.rule, area_weighting=cp.area_weighting,
             threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
             progress=advance, threads=threads, client=client,
+            categorical=_engine_categorical(cp),
         )
         weights_built += res.weights_builds
+        if res.unknown_codes:
+            warnings.warn(
+                f"layer {cp.layer_name!r} holds codes not in its class table "
+                f"({', '.join(_code_text(c) for c in res.unknown_codes[:10])}); they are counted "
+                f"as 'other' in {cp.prefix}_share_other. Add them to classes: to name them.",
+                UnknownClassWarning,
+                stacklevel=_user_stacklevel(),
+            )
         if advance is not None:
             advance(0, done=True)
         workers |= res.workers
         for s, col in zip(cp.stats, cp.columns, strict=True):
-            columns[col] = res.values[s.name]
+            columns[col] = res.values[s[0] if cp.categorical is not None else s.name]
         qa = []
         for unit_codes, zonal_codes in zip(units.qa, res.qa, strict=True):
             codes = list(dict.fromkeys(list(unit_codes) + list(zonal_codes)))
@@ -576,7 +628,9 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     }
     unit = getattr(layer, "unit", None) or ""
     rows = []
-    for s, col in zip(cp.stats, cp.columns, strict=True):
+    if cp.categorical is not None:
+        rows = _categorical_codebook_rows(cp, base, layer)
+    for s, col in zip(cp.stats if cp.categorical is None else [], cp.columns, strict=False):
         text = STAT_DEFINITIONS.get(s.kind, s.kind).format(
             q=_q_text(s.q), threshold=cp.threshold, method=cp.rule
         )
@@ -601,6 +655,42 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         "unit_of_measure": "text",
         "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
     })
+    return rows
+
+
+def _engine_categorical(cp):
+    if cp.categorical is None:
+        return None
+    c = cp.categorical
+    return {"table": c["table"], "groups": c["groups"], "pairs": c["pairs"], "earlier": c["earlier"]}
+
+
+def _code_text(code: float) -> str:
+    return str(int(code)) if float(code).is_integer() else repr(code)
+
+
+def _categorical_codebook_rows(cp, base, layer) -> list[dict]:
+    from covextract.outputs.codebook import CATEGORICAL_DEFINITIONS
+
+    c = cp.categorical
+    legend = "; ".join(f"{_code_text(code)} = {lbl}" for code, lbl in zip(
+        c["table"].codes, c["table"].labels, strict=True))
+    groups = "; ".join(f"{g} = {', '.join(map(str, codes))}" for g, codes in c["groups"].items())
+    rows = []
+    for (suffix, stat), col in zip(c["columns"], cp.columns, strict=True):
+        target = suffix.split("_", 1)[1] if "_" in suffix and stat in ("share",) else ""
+        if stat == "net_change":
+            target = suffix[len("net_change_"):]
+        text = CATEGORICAL_DEFINITIONS[stat].format(
+            label=target, since=c.get("since") or "", pair=suffix[len("transition_"):].replace("_to_", " -> "),
+        )
+        text += f". Class table: {legend}" + (f"; groups: {groups}" if groups else "")
+        unit = {"dominant": "class label", "classes_present": "classes",
+                "shannon": "nats (natural log)"}.get(stat, "share 0-1")
+        if stat == "net_change":
+            unit = "share difference, -1 to 1"
+        rows.append({**base, "column": col, "statistic": stat, "definition": text,
+                     "unit_of_measure": unit, "qa_codes": ""})
     return rows
 
 

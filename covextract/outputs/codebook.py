@@ -55,6 +55,20 @@ STAT_DEFINITIONS = {
     "value": "value of the raster at the point ({method}); missing when that pixel is nodata",
 }
 
+CATEGORICAL_DEFINITIONS = {
+    "share": "share of the unit's valid area in class or group {label} (nodata excluded)",
+    "dominant": "class with the largest share of the valid area; a tie goes to the lowest code",
+    "classes_present": "number of classes with a positive share ('other' counts as one)",
+    "shannon": "Shannon diversity -sum p ln p over the class shares (Shannon 1948)",
+    "valid_share": "share of the unit's area with a valid class code",
+    "transition": (
+        "share of the unit's area that was {pair} between layer {since} and this layer "
+        "('any' = any class other than the target), on pixels valid in both"
+    ),
+    "net_change": "share of class {label} in this layer minus its share in layer {since}, "
+    "on pixels valid in both",
+}
+
 RULE_TEXT = {
     "overlap": "overlap: each pixel weighted by the exact fraction of its area inside the unit",
     "center": "center: pixels whose centre lies inside the unit, weight 1",
