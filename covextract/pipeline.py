@@ -249,22 +249,14 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     sources = {}
     used_layers = {c.layer for c in recipe.covariates}
     used_layers |= {c.since for c in recipe.covariates if getattr(c, "since", None)}
+    used_layers |= {c.weight_by for c in recipe.covariates if getattr(c, "weight_by", None)}
     for name, layer in recipe.layers.items():
         if name not in used_layers:
             continue
         try:
-            sources[name] = open_layer(
-                recipe.resolve(layer.file),
-                band=layer.band,
-                nodata=layer.nodata,
-                scale=layer.scale,
-                offset=layer.offset,
-                valid_range=layer.valid_range,
-                crs=layer.crs,
-                name=name,
-            )
+            sources[name] = _open_source(recipe, name, layer)
         except CovextractError as exc:
-            problem(exc, f"layers.{name}.file")
+            problem(exc, f"layers.{name}.{'bands' if layer.bands else 'file'}")
 
     # covariates and their columns
     plans: list[CovariatePlan] = []
@@ -333,6 +325,17 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
             )
         )
 
+    # weights on the same grid
+    for cp in plans:
+        wb = getattr(cp.spec, "weight_by", None)
+        if wb and cp.layer_name in sources and wb in sources:
+            from covextract.derive.bands import WeightedSource
+
+            try:
+                WeightedSource(sources[cp.layer_name], sources[wb])
+            except CovextractError as exc:
+                problem(exc, f"covariates[{cp.index}].weight_by")
+
     # units overlap each layer's extent
     for cp in plans:
         us = unit_sets.get(cp.unit_key)
@@ -370,6 +373,60 @@ def _user_stacklevel() -> int:
         frame = frame.f_back
         level += 1
     return level
+
+
+def _open_source(recipe, name, layer):
+    """The raster source of a layer: one band, or an index of several bands."""
+    from covextract.io.rasters import open_layer
+
+    if layer.bands:
+        from covextract.derive.bands import BandMathSource
+        from covextract.derive.expression import parse_expression
+
+        bands = {
+            bname: open_layer(recipe.resolve(b.file), band=b.band, nodata=b.nodata,
+                              scale=b.scale, offset=b.offset, crs=layer.crs,
+                              name=f"{name}.{bname}")
+            for bname, b in layer.bands.items()
+        }
+        expr = parse_expression(layer.index or layer.expression, bands,
+                                key=f"layers.{name}.expression")
+        src = BandMathSource(bands, expr)
+        if layer.ceiling is not None or layer.valid_range is not None:
+            src = _Clipped(src, layer.valid_range, layer.ceiling)
+        return src
+    return open_layer(
+        recipe.resolve(layer.file),
+        band=layer.band,
+        nodata=layer.nodata,
+        scale=layer.scale,
+        offset=layer.offset,
+        valid_range=layer.valid_range,
+        crs=layer.crs,
+        name=name,
+        ceiling=layer.ceiling,
+    )
+
+
+class _Clipped:
+    """valid_range and ceiling applied to a derived layer's values."""
+
+    def __init__(self, source, valid_range, ceiling) -> None:
+        self.source, self.valid_range, self.ceiling = source, valid_range, ceiling
+        self.grid, self.path = source.grid, source.path
+        self.nodata, self.scale, self.offset = (), 1.0, 0.0
+
+    def read_block(self, window):
+        return self.source.read_block(window)
+
+    def to_values(self, stored):
+        values, valid = self.source.to_values(stored)
+        if self.valid_range is not None:
+            with np.errstate(invalid="ignore"):
+                valid = valid & (values >= self.valid_range[0]) & (values <= self.valid_range[1])
+        if self.ceiling is not None:
+            values = np.where(valid, np.minimum(values, self.ceiling), values)
+        return values, valid
 
 
 def _categorical_config(cov, layer, sources, problem, i):
@@ -524,13 +581,18 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
     for cp in plan.covariates:
         units = plan.unit_sets[cp.unit_key]
         src = plan.sources[cp.layer_name]
+        weight_by = getattr(cp.spec, "weight_by", None)
+        if weight_by:
+            from covextract.derive.bands import WeightedSource
+
+            src = WeightedSource(src, plan.sources[weight_by])
         geoms = units.to_crs(src.grid.crs)
         est = int(estimate_entries(geoms, src.grid).sum())
         n_blocks = len(src.grid.block_windows())
         advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
         res = zonal_units(
             src, geoms, list(cp.spec.stats) if cp.categorical is not None else cp.stats,
-            rule=cp.rule, area_weighting=cp.area_weighting,
+            rule=cp.rule, area_weighting="on" if weight_by else cp.area_weighting,
             threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
             progress=advance, threads=threads, client=client,
             categorical=_engine_categorical(cp),
@@ -566,7 +628,7 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         for q in qa:
             for code in filter(None, q.split(";")):
                 qa_counts[code] = qa_counts.get(code, 0) + 1
-        codebook.extend(_codebook_rows(recipe, cp, units, src, QA_CODES))
+        codebook.extend(_codebook_rows(recipe, cp, units, plan.sources[cp.layer_name], QA_CODES))
     table = plan.table
     # Numbers stay numbers in the returned table and in Parquet/GeoPackage outputs;
     # write_table turns them into round-trip text only for a CSV file.
@@ -603,14 +665,12 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     from covextract.outputs.codebook import RULE_TEXT, STAT_DEFINITIONS
 
     layer = recipe.layers[cp.layer_name]
-    # The file's nodata and the recipe's nodata are often the same code: list it once.
-    nd = ", ".join(repr(v) for v in dict.fromkeys(src.nodata)) or "none declared"
-    nodata_text = (
-        f"stored values {nd}, NaN"
-        + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
-        + " are missing; physical value = stored x "
-        + f"{src.scale!r} + {src.offset!r}, applied before any statistic"
-    )
+    nodata_text = _nodata_text(src, layer)
+    if cp.spec is not None and getattr(cp.spec, "weight_by", None):
+        nodata_text += (
+            f"; weighted by layer {cp.spec.weight_by!r} (weight = coverage x pixel area x its "
+            "value); pixels where it is missing or negative are excluded and lower valid_share"
+        )
     base = {
         "layer": cp.layer_name,
         "pixel_rule": RULE_TEXT.get(cp.rule, cp.rule),
@@ -656,6 +716,43 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
     })
     return rows
+
+
+def _source_text(src) -> str:
+    nd = ", ".join(repr(v) for v in dict.fromkeys(src.nodata)) or "none declared"
+    return (
+        f"stored values {nd}, NaN"
+        + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
+        + " are missing; physical value = stored x "
+        + f"{src.scale!r} + {src.offset!r}, applied before any statistic"
+        + (f"; values above {src.ceiling!r} are set to {src.ceiling!r}"
+           if getattr(src, "ceiling", None) is not None else "")
+    )
+
+
+def _nodata_text(src, layer) -> str:
+    """How missing values are handled, for the codebook."""
+    if not layer.bands:
+        return _source_text(src)
+    inner = src.source if isinstance(src, _Clipped) else src
+    parts = [f"band {name}: {_source_text(b)}" for name, b in inner.bands.items()]
+    text = (
+        f"index {layer.index or layer.expression!r} computed per pixel after each band's scale "
+        "and fill; a pixel is missing where any band is missing or the formula is undefined "
+        "(division by zero gives nodata, not inf). " + "; ".join(parts)
+    )
+    if layer.valid_range:
+        text += f"; index values outside {list(layer.valid_range)} are missing"
+    if layer.ceiling is not None:
+        text += f"; index values above {layer.ceiling!r} are set to it"
+    return text
+
+
+def _layer_files(recipe, name) -> list:
+    layer = recipe.layers[name]
+    if layer.bands:
+        return [(f"layer:{name}.{b}", recipe.resolve(spec.file)) for b, spec in layer.bands.items()]
+    return [(f"layer:{name}", recipe.resolve(layer.file))]
 
 
 def _engine_categorical(cp):
@@ -728,8 +825,9 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
     inputs.append({"role": "study_table", "path": plan.table.path})
     if recipe.units is not None and recipe.units.boundaries is not None:
         inputs.append({"role": "boundaries", "path": recipe.resolve(recipe.units.boundaries.file)})
-    for name, src in plan.sources.items():
-        inputs.append({"role": f"layer:{name}", "path": src.path})
+    for name in plan.sources:
+        for role, path in _layer_files(recipe, name):
+            inputs.append({"role": role, "path": path})
     layers = {
         name: {"crs": src.grid.crs.to_string(), "width": src.grid.width,
                "height": src.grid.height, "transform": list(src.grid.transform)[:6],

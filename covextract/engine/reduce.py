@@ -41,6 +41,7 @@ class BlockPartial:
     above_area: dict  # threshold -> Σ c·a/1e6 over valid v > thr
     above_w: dict  # threshold -> Σ w over valid v > thr
     dist: tuple | None = None  # (unit, value, w) of valid entries, when asked for
+    w_base: np.ndarray | None = None  # Σ w over valid entries without the weight_by factor
 
 
 def reduce_block(
@@ -54,6 +55,7 @@ def reduce_block(
     weighting: bool,
     thresholds=(),
     keep_distribution: bool = False,
+    factor: np.ndarray | None = None,
 ) -> BlockPartial:
     """Reduce one block.
 
@@ -71,11 +73,17 @@ def reduce_block(
         Thresholds for ``area_above`` / ``share_above`` (strictly greater).
     keep_distribution : bool
         Keep (unit, value, weight) of valid entries for percentiles.
+    factor : ndarray, optional
+        Per-entry extra weight (``weight_by``: population density), multiplied
+        into ``w`` only; sums, totals and areas are not weighted by it.
     """
     n = unit.size
     c = cov.astype(np.float64)
     a = np.asarray(areas, dtype=np.float64)
     w = c * a if weighting else c
+    w_base = w  # without the weight_by factor: valid_share stays a share of area
+    if factor is not None:
+        w = w * factor
     is_start = np.empty(n, dtype=bool)
     is_start[:1] = True
     np.not_equal(unit[1:], unit[:-1], out=is_start[1:])
@@ -87,7 +95,7 @@ def reduce_block(
     v_all = values[pix]
     ok = valid[pix]
     ca_km2 = c * a / 1e6
-    w_all = np.bincount(local, weights=w, minlength=k)
+    w_all = np.bincount(local, weights=w_base, minlength=k)
     area_all = np.bincount(local, weights=ca_km2, minlength=k)
 
     lv = local[ok]
@@ -96,6 +104,7 @@ def reduce_block(
     cv = c[ok]
     count = np.bincount(lv, minlength=k).astype(np.int64)
     wsum = np.bincount(lv, weights=wv, minlength=k)
+    wbase = wsum if factor is None else np.bincount(lv, weights=w_base[ok], minlength=k)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.bincount(lv, weights=wv * v, minlength=k) / wsum
     dev = v - mean[lv]
@@ -122,7 +131,7 @@ def reduce_block(
         dist = (unit[ok].astype(np.int32), v.copy(), wv.copy())
     return BlockPartial(
         units, w_all, area_all, count, wsum, mean, m2, csum, dens, vmin, vmax,
-        above_area, above_w, dist,
+        above_area, above_w, dist, wbase,
     )
 
 
@@ -134,6 +143,7 @@ class Accumulator:
     thresholds: tuple = ()
     keep_distribution: bool = False
     w_all: np.ndarray = field(init=False)
+    w_base: np.ndarray = field(init=False)
     area_all: np.ndarray = field(init=False)
     count: np.ndarray = field(init=False)
     w: np.ndarray = field(init=False)
@@ -150,6 +160,7 @@ class Accumulator:
     def __post_init__(self) -> None:
         n = self.n_units
         self.w_all = np.zeros(n)
+        self.w_base = np.zeros(n)
         self.area_all = np.zeros(n)
         self.count = np.zeros(n, dtype=np.int64)
         self.w = np.zeros(n)
@@ -172,6 +183,7 @@ class Accumulator:
         """
         u = p.units
         self.w_all[u] += p.w_all
+        self.w_base[u] += p.w if p.w_base is None else p.w_base
         self.area_all[u] += p.area_all
         self.count[u] += p.count
         self.csum[u] += p.csum

@@ -58,10 +58,11 @@ def _worker_name() -> str:
 
 
 def _continuous_reducer(weighting, thresholds, keep):
-    def reduce(unit, pix, cov, values, valid, areas):
+    def reduce(unit, pix, cov, values, valid, areas, factor=None):
         return reduce_block(
             unit, pix, cov, values.ravel(), valid.ravel(), areas,
             weighting=weighting, thresholds=thresholds, keep_distribution=keep,
+            factor=None if factor is None else factor.ravel()[pix],
         )
 
     return reduce
@@ -71,8 +72,12 @@ def _block_task(source, grid, window, unit, pix, cov, reducer):
     t0 = time.perf_counter()
     stored = source.read_block(window)
     t1 = time.perf_counter()
-    values, valid = source.to_values(stored)
-    part = reducer(unit, pix, cov, values, valid, entry_areas(grid, window, pix))
+    out = source.to_values(stored)
+    areas = entry_areas(grid, window, pix)
+    if len(out) == 3:  # a weighted source: (values, valid, per-pixel weight factor)
+        part = reducer(unit, pix, cov, out[0], out[1], areas, factor=out[2])
+    else:
+        part = reducer(unit, pix, cov, out[0], out[1], areas)
     t2 = time.perf_counter()
     return part, t1 - t0, t2 - t1, _worker_name()
 

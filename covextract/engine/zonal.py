@@ -133,7 +133,9 @@ def zonal(
     built = weights is None
     if weights is None:
         weights = build_weights(geoms, grid, rule)
-    if area_weighting in ("auto", True):
+    if area_weighting == "on":
+        weighting = True
+    elif area_weighting in ("auto", True):
         weighting = bool(grid.area_varies)
     elif area_weighting in ("off", False, None):
         weighting = False
@@ -180,7 +182,7 @@ def zonal(
         )
         offgrid_w = _offgrid_weight(weights, cov_on, acc.area_all, weighting)
         values = finalize(acc, stats, offgrid_w=offgrid_w, threshold=threshold)
-        valid_w = acc.w
+        valid_w = acc.w_base
         unknown = []
     denom = acc.w_all + offgrid_w
     with np.errstate(invalid="ignore", divide="ignore"):

@@ -62,6 +62,7 @@ class RasterSource:
     scale: float = 1.0
     offset: float = 0.0
     valid_range: tuple[float, float] | None = None
+    ceiling: float | None = None
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
 
     def __getstate__(self):
@@ -109,6 +110,8 @@ class RasterSource:
             lo, hi = self.valid_range
             with np.errstate(invalid="ignore"):
                 valid &= (values >= lo) & (values <= hi)
+        if self.ceiling is not None:
+            np.minimum(values, self.ceiling, out=values, where=valid)
         return values, valid
 
     def close(self) -> None:
@@ -141,6 +144,7 @@ def open_layer(
     valid_range=None,
     crs=None,
     name: str | None = None,
+    ceiling: float | None = None,
 ) -> RasterSource:
     """Open a raster band and check it can be used.
 
@@ -158,6 +162,8 @@ def open_layer(
         Physical values outside this closed range are missing.
     crs : str, optional
         CRS to assume when the file has none.
+    ceiling : float, optional
+        Physical values above it are set to it (saturated sensors).
     name : str, optional
         Layer name, used in messages.
 
@@ -212,6 +218,7 @@ def open_layer(
                 scale=float(scale if scale is not None else (file_scale or 1.0)),
                 offset=float(offset if offset is not None else (file_offset or 0.0)),
                 valid_range=tuple(valid_range) if valid_range is not None else None,
+                ceiling=float(ceiling) if ceiling is not None else None,
             )
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(

@@ -462,6 +462,31 @@ class Units(_Model):
         return _validate_with(cls, data, handler, issues)
 
 
+class Band(_Model):
+    """One input band of a band-math layer.
+
+    Parameters
+    ----------
+    file : str
+        Raster path.
+    band : int
+        1-based band number; default 1.
+    scale, offset : float, optional
+        Physical value = stored × scale + offset, applied before the index.
+    nodata : list of float, optional
+        Stored fill values, in addition to the file's own nodata.
+    """
+
+    file: PathText
+    band: Annotated[int, Field(ge=1)] = 1
+    scale: Finite | None = None
+    offset: Finite | None = None
+    nodata: Annotated[
+        Annotated[list[Finite], Field(min_length=1)] | None,
+        BeforeValidator(_nodata_list),
+    ] = None
+
+
 class Layer(_Model):
     """One raster band and how to read it.
 
@@ -489,9 +514,18 @@ class Layer(_Model):
         Class code to label (categorical layers; required there).
     groups : dict of str to list of int, optional
         Several class codes counted as one (categorical layers).
+    bands : dict of str to Band, optional
+        Instead of ``file``: named bands of rasters on one grid, combined per
+        pixel by ``index`` or ``expression``.
+    index : {"ndvi", "evi"}, optional
+        A built-in index of ``bands`` (NDVI: bands nir, red; EVI: nir, red, blue).
+    expression : str, optional
+        A band-math formula over the band names, e.g. ``(nir - red) / (nir + red)``.
+    ceiling : float, optional
+        Physical values above it are set to it (saturated night lights).
     """
 
-    file: PathText
+    file: PathText | None = None
     band: Annotated[int, Field(ge=1)] = 1
     kind: Literal["continuous", "categorical"] = "continuous"
     scale: Finite | None = None
@@ -511,6 +545,10 @@ class Layer(_Model):
     groups: (
         Annotated[dict[Name, Annotated[list[int], Field(min_length=1)]], Field(min_length=1)] | None
     ) = None
+    bands: Annotated[dict[Name, Band], Field(min_length=1)] | None = None
+    index: Literal["ndvi", "evi"] | None = None
+    expression: Annotated[str, StringConstraints(min_length=1)] | None = None
+    ceiling: Finite | None = None
 
     @field_validator("crs")
     @classmethod
@@ -534,6 +572,7 @@ class Layer(_Model):
     @model_validator(mode="after")
     def _kind_rules(self) -> Layer:
         issues = []
+        issues += self._band_rules()
         if self.kind == "categorical":
             if self.classes is None:
                 issues.append(
@@ -605,6 +644,42 @@ class Layer(_Model):
         _raise_issues("Layer", issues)
         return self
 
+    def _band_rules(self) -> list:
+        issues = []
+        if self.file is None and self.bands is None:
+            issues.append(_issue(("file",), "a layer needs file: <raster>, or bands: with an "
+                                 "index: or expression: combining them"))
+        if self.file is not None and self.bands is not None:
+            issues.append(_issue(("bands",), "give either file: or bands:, not both", None))
+        if self.bands is not None:
+            if self.kind == "categorical":
+                issues.append(_issue(("bands",), "band math gives continuous values; remove "
+                                     "kind: categorical", None))
+            if (self.index is None) == (self.expression is None):
+                issues.append(_issue(("index",), "bands: need exactly one of index: (ndvi, evi) "
+                                     "or expression: to combine them", None))
+            needed = {"ndvi": ("nir", "red"), "evi": ("nir", "red", "blue")}.get(self.index, ())
+            missing = [b for b in needed if b not in self.bands]
+            if missing:
+                issues.append(_issue(("bands",), f"index {self.index} needs bands named "
+                                     f"{', '.join(needed)}; missing: {', '.join(missing)}", None))
+            if self.expression is not None:
+                from covextract.derive.expression import parse_expression
+                from covextract.errors import RecipeError
+
+                try:
+                    parse_expression(self.expression, self.bands)
+                except RecipeError as exc:
+                    issues.append(_issue(("expression",), exc.problems[0].message,
+                                         self.expression))
+        elif self.index is not None or self.expression is not None:
+            key = "index" if self.index is not None else "expression"
+            issues.append(_issue((key,), f"{key}: combines bands: add bands: {{name: {{file: "
+                                 "...}}}} to this layer", getattr(self, key)))
+        if self.ceiling is not None and self.kind == "categorical":
+            issues.append(_issue(("ceiling",), "ceiling applies to continuous values", self.ceiling))
+        return issues
+
 
 class Covariate(_Model):
     """Statistics of one layer, summarised per unit.
@@ -635,6 +710,10 @@ class Covariate(_Model):
     pairs : list of [from, to], optional
         Class or group labels of the transitions to report (``any`` as
         ``from``: any other class).
+    weight_by : str, optional
+        A continuous layer on the same grid (e.g. population density) that
+        weights means, spreads and percentiles: weight = coverage × area ×
+        that layer's value.
     """
 
     layer: str
@@ -646,6 +725,7 @@ class Covariate(_Model):
     threshold: Finite | None = None
     since: Name | None = None
     pairs: list[Annotated[list[Name], Field(min_length=2, max_length=2)]] | None = None
+    weight_by: Name | None = None
 
 
 class Output(_Model):
@@ -879,6 +959,19 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
         if not wants:
             issues.append(_issue(loc + ("since",), "since: is only used by transition and "
                                  "net_change; add one of them to stats or remove since", since))
+    weight_by = cov.get("weight_by")
+    if isinstance(weight_by, str):
+        other = layers.get(weight_by)
+        if other is None:
+            issues.append(_issue(loc + ("weight_by",), f"unknown layer {weight_by!r}"
+                                 f"{_hint(weight_by, layers)}", weight_by))
+        elif isinstance(other, dict) and other.get("kind", "continuous") != "continuous":
+            issues.append(_issue(loc + ("weight_by",), f"layer {weight_by!r} holds class codes; "
+                                 "weight_by needs a continuous layer such as population density",
+                                 weight_by))
+        if kind == "categorical":
+            issues.append(_issue(loc + ("weight_by",), "weight_by applies to continuous layers",
+                                 weight_by))
     if "transition" in stats and not pairs:
         issues.append(_issue(loc + ("pairs",), "statistic transition needs pairs: [[from, to], "
                              "...] naming classes or groups (from may be any)"))

@@ -109,7 +109,7 @@ def finalize(acc: Accumulator, stats: list[StatName], *, offgrid_w: np.ndarray, 
     out = {}
     denom_all = acc.w_all + offgrid_w
     with np.errstate(invalid="ignore", divide="ignore"):
-        valid_share = np.where(denom_all > 0, acc.w / denom_all, 0.0)
+        valid_share = np.where(denom_all > 0, acc.w_base / denom_all, 0.0)
     valid_share = np.where(has, np.clip(valid_share, 0.0, 1.0), 0.0)
     pct = [s for s in stats if s.needs_distribution]
     pct_values = {}
