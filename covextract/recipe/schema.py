@@ -681,6 +681,73 @@ class Layer(_Model):
         return issues
 
 
+class Totals(_Model):
+    """Known totals per zone (e.g. census counts by district).
+
+    Parameters
+    ----------
+    file : str
+        A CSV or Parquet table.
+    id : str
+        Column holding the zone id (matches ``zones.id``).
+    column : str
+        Column holding the total.
+    """
+
+    file: PathText
+    id: Column
+    column: Column
+
+
+class Reallocate(_Model):
+    """Dasymetric reallocation of zone totals over light (a population proxy).
+
+    Parameters
+    ----------
+    zones : Boundaries
+        Zone polygons with an id (``file``, ``id``, ``layer``).
+    totals : Totals
+        The known total of each zone.
+    by : {"light", "lit_area"}
+        Spread each total in proportion to light, or to lit area (pixels above
+        ``threshold``); default light.
+    threshold : float, optional
+        Background light below which a pixel is unlit (``by: lit_area``).
+    """
+
+    zones: Boundaries
+    totals: Totals
+    by: Literal["light", "lit_area"] = "light"
+    threshold: Finite | None = None
+
+    @model_validator(mode="after")
+    def _threshold_for_lit_area(self) -> Reallocate:
+        if self.by == "lit_area" and self.threshold is None:
+            _raise_issues("Reallocate", [_issue(("threshold",), "by: lit_area needs threshold: "
+                                                "<background light level>")])
+        return self
+
+
+class Calibrate(_Model):
+    """Population proxy by a log–log fit of known counts on light.
+
+    Parameters
+    ----------
+    known : str
+        Study-table column with the known count of the units that have one
+        (empty cells: unknown, predicted).
+    light : {"density_total", "sum", "mean"}
+        Which light statistic of the unit predicts; default density_total.
+    """
+
+    known: Column
+    light: Literal["density_total", "sum", "mean"] = "density_total"
+
+
+#: Statistics of population proxies.
+PROXY_STATS = {"reallocate": ("allocated",), "calibrate": ("predicted",)}
+
+
 class Covariate(_Model):
     """Statistics of one layer, summarised per unit.
 
@@ -714,6 +781,12 @@ class Covariate(_Model):
         A continuous layer on the same grid (e.g. population density) that
         weights means, spreads and percentiles: weight = coverage × area ×
         that layer's value.
+    reallocate : Reallocate, optional
+        Population proxy: zone totals spread over the layer's light; stat
+        ``allocated``.
+    calibrate : Calibrate, optional
+        Population proxy: log–log fit on units with known counts; stat
+        ``predicted`` (with ``_lower`` and ``_upper`` columns).
     """
 
     layer: str
@@ -726,6 +799,8 @@ class Covariate(_Model):
     since: Name | None = None
     pairs: list[Annotated[list[Name], Field(min_length=2, max_length=2)]] | None = None
     weight_by: Name | None = None
+    reallocate: Reallocate | None = None
+    calibrate: Calibrate | None = None
 
 
 class Output(_Model):
@@ -869,6 +944,16 @@ def _check_covariate(
                 )
             )
     point = None if point_units is None else (point_units and cov.get("buffer_m") is None)
+    proxies = [k for k in PROXY_STATS if cov.get(k) is not None]
+    proxy = proxies[0] if proxies else None
+    if len(proxies) > 1:
+        issues.append(_issue(loc + (proxies[1],), "give reallocate: or calibrate:, not both "
+                             "(use two covariates with different names)"))
+    if proxy is not None and kind == "categorical":
+        issues.append(_issue(loc + (proxy,), f"{proxy}: needs a continuous light layer", layer))
+    if proxy is not None and point:
+        issues.append(_issue(loc + (proxy,), f"{proxy}: needs area units (buffers or "
+                             "boundaries), not values at points", None))
     stats = cov.get("stats")
     names = [s for s in stats if isinstance(s, str)] if isinstance(stats, list) else []
     if isinstance(stats, list):
@@ -879,6 +964,12 @@ def _check_covariate(
                 issues.append(
                     _issue(loc + ("stats", j), f"statistic {stat!r} is listed twice", stat)
                 )
+            elif proxy is not None:
+                if stat not in PROXY_STATS[proxy]:
+                    issues.append(_issue(loc + ("stats", j), f"a covariate with {proxy}: gives "
+                                         f"stats: {list(PROXY_STATS[proxy])}; {stat!r} is not one"
+                                         " (put other statistics in a covariate of their own)",
+                                         stat))
             elif kind is not None:
                 # With the unit shape unclear, report only names wrong either way.
                 modes = (False, True) if point is None else (point,)
