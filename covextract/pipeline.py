@@ -52,6 +52,7 @@ class CovariatePlan:
     columns: list[str]
     qa_column: str
     categorical: dict | None = None
+    proxy: dict | None = None
 
 
 @dataclass
@@ -267,7 +268,13 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         k = _unit_key(recipe, cov)
         point = k[0] == "point"
         categorical = None
-        if getattr(layer, "kind", "continuous") == "categorical":
+        proxy = None
+        if getattr(cov, "reallocate", None) is not None or getattr(cov, "calibrate", None) is not None:
+            proxy = _proxy_config(recipe, cov, table, problem, i)
+            if proxy is None:
+                continue
+            stats = proxy["stats"]
+        elif getattr(layer, "kind", "continuous") == "categorical":
             if point:
                 problem(
                     f"layer {cov.layer!r} holds class codes; class shares need an area: give "
@@ -289,6 +296,8 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         rule = k[1] if point else cov.pixels
         if categorical is not None:
             columns = [f"{prefix}_{suffix}" for suffix, _ in stats]
+        elif proxy is not None:
+            columns = [f"{prefix}_{suffix}" for suffix in proxy["columns"]]
         else:
             columns = [f"{prefix}_{s.name}" for s in stats]
         qa_col = f"{prefix}_qa"
@@ -321,7 +330,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 index=i, spec=cov, layer_name=cov.layer, prefix=prefix, stats=stats,
                 rule=rule, area_weighting=_weighting_text(cov.area_weighting),
                 threshold=cov.threshold, unit_key=k, columns=columns, qa_column=qa_col,
-                categorical=categorical,
+                categorical=categorical, proxy=proxy,
             )
         )
 
@@ -578,6 +587,7 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
     n_missing = {}
     weights_built = 0
     workers: set = set()
+    summary_extra: dict = {}
     for cp in plan.covariates:
         units = plan.unit_sets[cp.unit_key]
         src = plan.sources[cp.layer_name]
@@ -590,13 +600,20 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         est = int(estimate_entries(geoms, src.grid).sum())
         n_blocks = len(src.grid.block_windows())
         advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
-        res = zonal_units(
-            src, geoms, list(cp.spec.stats) if cp.categorical is not None else cp.stats,
-            rule=cp.rule, area_weighting="on" if weight_by else cp.area_weighting,
-            threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
-            progress=advance, threads=threads, client=client,
-            categorical=_engine_categorical(cp),
-        )
+        if cp.proxy is not None:
+            res, proxy_values = _run_proxy(cp, src, geoms, cache, units, advance, threads, client)
+            columns.update(proxy_values)
+            summary_extra[cp.prefix] = cp.proxy.get("fit", {})
+        else:
+            res = zonal_units(
+                src, geoms, list(cp.spec.stats) if cp.categorical is not None else cp.stats,
+                rule=cp.rule, area_weighting="on" if weight_by else cp.area_weighting,
+                threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
+                progress=advance, threads=threads, client=client,
+                categorical=_engine_categorical(cp),
+            )
+            for s, col in zip(cp.stats, cp.columns, strict=True):
+                columns[col] = res.values[s[0] if cp.categorical is not None else s.name]
         weights_built += res.weights_builds
         if res.unknown_codes:
             warnings.warn(
@@ -609,8 +626,6 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         if advance is not None:
             advance(0, done=True)
         workers |= res.workers
-        for s, col in zip(cp.stats, cp.columns, strict=True):
-            columns[col] = res.values[s[0] if cp.categorical is not None else s.name]
         qa = []
         for unit_codes, zonal_codes in zip(units.qa, res.qa, strict=True):
             codes = list(dict.fromkeys(list(unit_codes) + list(zonal_codes)))
@@ -647,6 +662,7 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         "weights_built": weights_built,
         "weights_from_cache": cache.hits,
         "workers": sorted(workers),
+        "proxy_fits": {k: v for k, v in summary_extra.items() if v},
     }
     return RunResult(written, list(columns), codebook, outputs, summary)
 
@@ -690,7 +706,10 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     rows = []
     if cp.categorical is not None:
         rows = _categorical_codebook_rows(cp, base, layer)
-    for s, col in zip(cp.stats if cp.categorical is None else [], cp.columns, strict=False):
+    elif cp.proxy is not None:
+        rows = _proxy_codebook_rows(cp, base, layer)
+    plain = cp.categorical is None and cp.proxy is None
+    for s, col in zip(cp.stats if plain else [], cp.columns, strict=False):
         text = STAT_DEFINITIONS.get(s.kind, s.kind).format(
             q=_q_text(s.q), threshold=cp.threshold, method=cp.rule
         )
@@ -709,6 +728,11 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         rows.append({**base, "column": col, "statistic": s.name, "definition": text,
                      "unit_of_measure": u, "qa_codes": ""})
     codes = {**_unit_qa_codes(), **qa_codes}
+    if cp.proxy is not None:
+        from covextract.derive import population
+
+        codes.update(population.REALLOCATION_QA_CODES if cp.proxy["kind"] == "reallocate"
+                     else population.CALIBRATION_QA_CODES)
     rows.append({
         **base, "column": cp.qa_column, "statistic": "qa",
         "definition": "reason codes separated by ';', empty when all is well",
@@ -753,6 +777,145 @@ def _layer_files(recipe, name) -> list:
     if layer.bands:
         return [(f"layer:{name}.{b}", recipe.resolve(spec.file)) for b, spec in layer.bands.items()]
     return [(f"layer:{name}", recipe.resolve(layer.file))]
+
+
+def _proxy_config(recipe, cov, table, problem, i):
+    """Zones and totals (reallocate) or known counts (calibrate) of a proxy covariate."""
+    from covextract.errors import TableError
+    from covextract.io.tables import read_boundaries, read_study_table
+
+    if cov.reallocate is not None:
+        spec = cov.reallocate
+        key = f"covariates[{i}].reallocate"
+        try:
+            zones = read_boundaries(recipe.resolve(spec.zones.file), id_column=spec.zones.id,
+                                    layer=spec.zones.layer)
+            totals_table = read_study_table(recipe.resolve(spec.totals.file))
+        except CovextractError as exc:
+            problem(exc, key)
+            return None
+        frame = totals_table.frame
+        for col in (spec.totals.id, spec.totals.column):
+            if col not in frame.columns:
+                problem(_missing_column(col, frame.columns, f"{key}.totals"), f"{key}.totals")
+                return None
+        ids = frame[spec.totals.id].astype(str).str.strip()
+        if ids.duplicated().any():
+            problem(TableError(f"{key}.totals: zone ids listed twice in {spec.totals.file}: "
+                               + ", ".join(sorted(set(ids[ids.duplicated()]))[:5])), key)
+            return None
+        values = pd.to_numeric(frame[spec.totals.column], errors="coerce")
+        lookup = dict(zip(ids, values, strict=True))
+        zone_ids = [str(z) for z in zones["id"]]
+        missing = [z for z in zone_ids if z not in lookup or not np.isfinite(lookup[z])]
+        if missing:
+            problem(TableError(
+                f"{key}: zones without a usable total in {spec.totals.file} (column "
+                f"{spec.totals.column!r}): {', '.join(missing[:5])}"
+                + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
+                + ". Every zone needs a number; remove zones that have none from the zone file."
+            ), key)
+            return None
+        totals = np.array([lookup[z] for z in zone_ids], dtype=np.float64)
+        if (totals < 0).any():
+            bad = [z for z, t in zip(zone_ids, totals, strict=True) if t < 0]
+            problem(TableError(f"{key}: negative totals for zones {', '.join(bad[:5])}; totals "
+                               "are counts and cannot be negative"), key)
+            return None
+        return {"kind": "reallocate", "spec": spec, "zones": zones, "zone_ids": zone_ids,
+                "totals": totals, "stats": ["allocated"], "columns": ["allocated"]}
+    spec = cov.calibrate
+    key = f"covariates[{i}].calibrate.known"
+    if table is None:
+        return None
+    if spec.known not in table.frame.columns:
+        problem(_missing_column(spec.known, table.frame.columns, key), key)
+        return None
+    raw = table.frame[spec.known]
+    text = raw.astype(str).str.strip()
+    known = pd.to_numeric(text.where(text != "", None), errors="coerce")
+    bad = text[(text != "") & known.isna() & raw.notna()]
+    if len(bad):
+        problem(TableError(f"{key}: column {spec.known!r} has cells that are not numbers "
+                           f"(rows {', '.join(str(r + 1) for r in bad.index[:5])}: "
+                           f"{', '.join(repr(v) for v in bad.iloc[:5])}); leave unknown counts "
+                           "empty"), key)
+        return None
+    return {"kind": "calibrate", "spec": spec, "known": known.to_numpy(dtype=np.float64),
+            "stats": ["predicted"], "columns": ["predicted", "lower", "upper"]}
+
+
+def _run_proxy(cp, src, geoms, cache, units, advance, threads, client):
+    """Compute a population-proxy covariate; returns (result-like, columns)."""
+    from covextract.derive.population import calibrate, reallocate
+    from covextract.engine.zonal import ZonalResult, zonal_units
+
+    if cp.proxy["kind"] == "reallocate":
+        spec = cp.proxy["spec"]
+        zones = cp.proxy["zones"].to_crs(src.grid.crs)
+        out = reallocate(
+            src, np.array(list(zones.geometry), dtype=object), cp.proxy["totals"], geoms,
+            by=spec.by, threshold=spec.threshold, rule=cp.rule, zone_ids=cp.proxy["zone_ids"],
+            threads=threads, client=client, progress=advance,
+        )
+        cp.proxy["dark_zones"] = [cp.proxy["zone_ids"][j] for j in out.dark_zones]
+        res = ZonalResult(values={}, qa=out.qa, valid_share=np.asarray(out.valid_share),
+                          blocks_read=out.blocks_read, weights_built=True)
+        res.weights_builds = 1
+        return res, {f"{cp.prefix}_allocated": np.asarray(out.values, dtype=np.float64)}
+    spec = cp.proxy["spec"]
+    light = zonal_units(src, geoms, [parse_stat(spec.light)], rule=cp.rule,
+                        area_weighting=cp.area_weighting, cache=cache,
+                        units_fingerprint=units.fingerprint(), progress=advance,
+                        threads=threads, client=client)
+    x = light.values[spec.light]
+    fit = calibrate(x, cp.proxy["known"])
+    est, lo, hi, pqa = fit.predict(x)
+    cp.proxy["fit"] = fit.summary()
+    light.qa = [list(a) + list(b) for a, b in zip(light.qa, pqa, strict=True)]
+    return light, {f"{cp.prefix}_predicted": est, f"{cp.prefix}_lower": lo,
+                   f"{cp.prefix}_upper": hi}
+
+
+def _proxy_codebook_rows(cp, base, layer) -> list[dict]:
+    rows = []
+    unit = "people (proxy, not a count)"
+    if cp.proxy["kind"] == "reallocate":
+        spec = cp.proxy["spec"]
+        how = ("light x pixel area" if spec.by == "light"
+               else f"lit area (pixels with light > {spec.threshold!r})")
+        dark = cp.proxy.get("dark_zones") or []
+        text = (
+            f"zone totals from {spec.totals.file} (column {spec.totals.column!r}) spread over "
+            f"each zone of {spec.zones.file} in proportion to {how}, then summed over the "
+            "unit (dasymetric reallocation; each zone's allocated pixels sum to its total, "
+            "Tobler 1979). Zones without light spread their total evenly over their area"
+            + (f" (here: {', '.join(dark)})" if dark else "")
+            + ". A proxy: lights miss unlit settlements and saturate in towns"
+        )
+        rows.append({**base, "column": cp.columns[0], "statistic": "allocated",
+                     "definition": text, "unit_of_measure": unit, "qa_codes": ""})
+        return rows
+    spec = cp.proxy["spec"]
+    fit = cp.proxy.get("fit", {})
+    fit_text = ", ".join(f"{k} = {v:.6g}" if isinstance(v, float) else f"{k} = {v}"
+                         for k, v in fit.items())
+    common = (
+        f"fit of log(known count in column {spec.known!r}) = a + b log(light {spec.light}) on "
+        "units with a known count > 0 and light > 0 (unlit units are left out and get no "
+        f"prediction); {fit_text}"
+    )
+    texts = {
+        "predicted": "exp(a + b log light) x Duan (1983) smearing factor: " + common,
+        "lower": "lower end of the 95 % prediction interval, exp of the log-scale OLS interval: "
+        + common,
+        "upper": "upper end of the 95 % prediction interval, exp of the log-scale OLS interval: "
+        + common,
+    }
+    for col, suffix in zip(cp.columns, ("predicted", "lower", "upper"), strict=True):
+        rows.append({**base, "column": col, "statistic": suffix, "definition": texts[suffix],
+                     "unit_of_measure": unit, "qa_codes": ""})
+    return rows
 
 
 def _engine_categorical(cp):

@@ -1,7 +1,8 @@
 """Regenerate the invented demo scenario shipped in ``covextract/demo/data``.
 
 Everything written here is invented: the district, its villages, the survey
-clusters and every raster value. The coordinates lie in open ocean in the
+clusters, the sub-districts and their population totals, the land-cover
+legend and every raster value. The coordinates lie in open ocean in the
 South Atlantic (about 4.5..5.5 E, 12.5..11.5 S) on purpose, so that no real
 community is described. Do not use any of it for analysis.
 
@@ -47,6 +48,46 @@ NDVI_RES_DEG = 0.0009
 LST_RES_M = 250.0
 LIGHTS_RES_M = 500.0
 GPKG_DATE = "2021-12-31T00:00:00Z"
+
+# Land cover shares the NDVI grid exactly, so one set of coverage weights
+# serves ndvi, cover_2015 and cover_2021. The red/NIR bands and population
+# are on a coarser common grid (~200 m) to keep the package small.
+LAND_COVER_RES_DEG = NDVI_RES_DEG
+BANDS_RES_DEG = 0.0018
+POPULATION_RES_DEG = 0.0018
+
+# The invented land-cover legend. The codes were chosen not to match any
+# real land-cover product; 0 is nodata.
+CROPLAND, ORCHARD, FOREST, SCRUB, GRASSLAND, BUILT, WATER = 11, 12, 21, 22, 31, 41, 51
+LAND_COVER_CLASSES = {
+    CROPLAND: "cropland", ORCHARD: "orchard", FOREST: "forest", SCRUB: "scrub",
+    GRASSLAND: "grassland", BUILT: "built", WATER: "water",
+}  # fmt: skip
+LAND_COVER_NODATA = 0
+# How many rural villages lose forest to new fields between 2015 and 2021:
+# those with the most forest within 3 km in 2015.
+N_FRONTIER_VILLAGES = 6
+
+# Invented persons per household, used to spread each village's households
+# into a population density.
+PERSONS_PER_HOUSEHOLD = {"urban": 4.6, "rural": 5.3}
+
+# Four invented districts that partition the study area; the totals of
+# district_totals.csv are the population raster's own totals times these
+# invented factors (a census rarely agrees with a modelled density surface).
+DISTRICTS = [
+    ("01", "Velsharrow"),  # east
+    ("02", "Corrimund Plain"),  # south and south-west
+    ("03", "Brindlemarch"),  # north-west
+    ("04", "Upper Tamsin"),  # north and north-east
+]
+DISTRICT_TOTAL_FACTORS = (1.08, 0.93, 1.12, 0.97)
+# Where the district boundaries meet (km from the district centre) and the
+# bearing (degrees clockwise from north) of each boundary from there; district
+# k lies clockwise between boundaries k and k + 1. Chosen by hand so that
+# each district holds 9 to 11 villages, none close to a boundary.
+DISTRICT_HUB = (3.0, -4.0)
+DISTRICT_SPOKES = (52.0, 160.0, 264.0, 340.0)
 
 VILLAGE_NAMES = [
     "Orrowby", "Kelldown", "Marrish Ford", "Quillanmere", "Tobbery Cross",
@@ -126,6 +167,36 @@ def hash_unit(i, j, salt):
     h *= np.uint64(0xBF58476D1CE4E5B9)
     h ^= h >> np.uint64(29)
     return (h >> np.uint64(11)).astype(np.float64) / float(2**53)
+
+
+def value_noise(x, y, cell_km, salt):
+    """Smooth deterministic noise in [-0.5, 0.5): hashed lattice, smoothstep-interpolated.
+
+    Gives patchy class boundaries that compress well (unlike iid pixel noise).
+    """
+    gx = np.asarray(x) / cell_km
+    gy = np.asarray(y) / cell_km
+    i0 = np.floor(gx)
+    j0 = np.floor(gy)
+    fx = gx - i0
+    fy = gy - j0
+    sx = fx * fx * (3.0 - 2.0 * fx)
+    sy = fy * fy * (3.0 - 2.0 * fy)
+    h00 = hash_unit(i0, j0, salt)
+    h10 = hash_unit(i0 + 1, j0, salt)
+    h01 = hash_unit(i0, j0 + 1, salt)
+    h11 = hash_unit(i0 + 1, j0 + 1, salt)
+    top = h00 + sx * (h10 - h00)
+    bottom = h01 + sx * (h11 - h01)
+    return top + sy * (bottom - top) - 0.5
+
+
+def field_cells(x, y):
+    """Integer indices of the field patchwork (~900 m x 600 m, turned 0.4 rad)."""
+    c, s = math.cos(0.4), math.sin(0.4)
+    u = (x * c + y * s) / 0.9
+    v = (-x * s + y * c) / 0.6
+    return np.floor(u), np.floor(v)
 
 
 def river_polyline():
@@ -220,8 +291,8 @@ class Scenario:
                 hh[name] = int(rng.integers(45, 650))
         self.households = hh
 
-    def _clouds(self, near, n_random, salt):
-        rng = self.rng
+    def _clouds(self, near, n_random, salt, rng=None):
+        rng = self.rng if rng is None else rng
         cx, cy, s = [], [], []
         for name in near:
             px, py = self.positions[name]
@@ -267,21 +338,24 @@ class Scenario:
         spread at a small cost in file size (iid pixel noise does not
         compress).
         """
-        c, s = math.cos(0.4), math.sin(0.4)
-        u = (x * c + y * s) / 0.9
-        v = (-x * s + y * c) / 0.6
-        level = np.floor(5.0 * hash_unit(np.floor(u), np.floor(v), 7))
+        fu, fv = field_cells(x, y)
+        level = np.floor(5.0 * hash_unit(fu, fv, 7))
         return level / 2.0 - 1.0
 
 
 # --------------------------------------------------------------- the grids
-def ndvi_grid():
+def latlon_grid(res):
+    """A lat/lon grid of ``res`` degrees from the north-west corner of RASTER_BOUNDS."""
     from rasterio.transform import from_origin
 
     west, south, east, north = RASTER_BOUNDS
-    width = int(math.ceil(round((east - west) / NDVI_RES_DEG, 6)))
-    height = int(math.ceil(round((north - south) / NDVI_RES_DEG, 6)))
-    return from_origin(west, north, NDVI_RES_DEG, NDVI_RES_DEG), width, height
+    width = int(math.ceil(round((east - west) / res, 6)))
+    height = int(math.ceil(round((north - south) / res, 6)))
+    return from_origin(west, north, res, res), width, height
+
+
+def ndvi_grid():
+    return latlon_grid(NDVI_RES_DEG)
 
 
 def projected_grid(crs, res):
@@ -324,9 +398,8 @@ def pixel_centres_km(transform, width, height, crs):
 
 
 # -------------------------------------------------------------- the rasters
-def make_ndvi(sc, rng):
-    transform, width, height = ndvi_grid()
-    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+def land_ndvi(sc, x, y):
+    """NDVI of the land surface (the lake not yet drawn), without noise."""
     veg = sc.vegetation(x, y)
     built = sc.settlement(x, y, urban_only=False)
     ndvi = 0.42 + 0.26 * veg + 0.22 * sc.riparian(x, y)
@@ -334,7 +407,13 @@ def make_ndvi(sc, rng):
     farmland = np.abs(veg) < 0.55
     ndvi += np.where(farmland, 0.05 * sc.field_texture(x, y), 0.0)
     ndvi -= 0.40 * np.minimum(built, 1.0)
-    ndvi = np.clip(ndvi, 0.02, 0.9)
+    return np.clip(ndvi, 0.02, 0.9)
+
+
+def make_ndvi(sc, rng):
+    transform, width, height = ndvi_grid()
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    ndvi = land_ndvi(sc, x, y)
     # Open water: negative NDVI, with a narrow wet shore.
     r = lake_radius(x, y)
     shore = np.clip((r - 1.0) / 0.08, 0.0, 1.0)
@@ -419,6 +498,304 @@ def write_tif(path, array, transform, crs, nodata, *, block, predictor, descript
             "not for analysis"
         )
         dst.units = (unit,)
+
+
+# ------------------------------------------- land cover, bands, population
+def built_radius_km(sc, names, year, frontier):
+    """Radius (km) of each village's built-up core in ``year`` (2015 or 2021).
+
+    Towns grow between the years, the larger (brighter) ones most; the
+    frontier villages grow too; the other rural villages stay as they were.
+    """
+    hh = np.array([sc.households[n] for n in names], dtype=np.float64)
+    urban = np.array([n in sc.urban for n in names])
+    r = np.where(urban, 0.55 + 0.9 * np.sqrt(hh / 4200.0), 0.12 + 0.28 * np.sqrt(hh / 650.0))
+    if year == 2021:
+        grown_town = r * (1.15 + 0.25 * hh / 4200.0) + 0.2
+        grown_village = np.where(np.isin(names, list(frontier)), 1.6 * r + 0.1, r)
+        r = np.where(urban, grown_town, grown_village)
+    return r
+
+
+def built_mask(sc, x, y, year, frontier):
+    """Pixels of built-up land in ``year``; the 2015 mask lies inside the 2021 one."""
+    names = VILLAGE_NAMES
+    radius = built_radius_km(sc, names, year, frontier)
+    nearest = np.full(np.shape(x), np.inf)
+    for name, r in zip(names, radius, strict=True):
+        px, py = sc.positions[name]
+        np.minimum(nearest, np.hypot(x - px, y - py) / r, out=nearest)
+    # The same ragged edge in both years, so growth never removes built land.
+    return nearest < 1.0 + 0.7 * value_noise(x, y, 0.35, 83)
+
+
+def land_cover_maps(sc, x, y, frontier=None):
+    """Invented land-cover codes of 2015 and 2021 at points ``(x, y)`` in km.
+
+    Returns ``(cover_2015, cover_2021, frontier)``: two uint8 arrays with
+    the codes of LAND_COVER_CLASSES, and the names of the villages that clear
+    forest (chosen from the 2015 map when ``frontier`` is None, which needs
+    a grid fine and wide enough to see 3 km around every village).
+    """
+    veg = sc.vegetation(x, y)
+    river_km = distance_to_polyline(x, y, sc.river)
+    riparian = np.exp(-river_km / 1.2)
+    # Natural zones from the vegetation field, with patchy edges and gallery
+    # forest along the river.
+    zone = veg + 0.9 * value_noise(x, y, 2.5, 31) + 0.5 * value_noise(x, y, 0.6, 37)
+    zone += 0.45 * riparian
+    fu, fv = field_cells(x, y)
+    field = hash_unit(fu, fv, 41)
+    cover = np.where(field < 0.52, CROPLAND, np.where(field < 0.64, ORCHARD, GRASSLAND))
+    cover = np.where(zone > 0.55, FOREST, cover)
+    cover = np.where(zone < -0.6, SCRUB, cover)
+    water = (lake_radius(x, y) < 1.0) | (river_km < 0.075)
+
+    early = cover.copy()
+    early[built_mask(sc, x, y, 2015, ())] = BUILT
+    early[water] = WATER
+    if frontier is None:
+        frontier = frontier_villages(sc, x, y, early)
+
+    late = cover.copy()
+    # Forest cleared for fields: whole fields at a time, most often within a
+    # few km of the frontier villages, rarely anywhere else.
+    p_clear = np.full(np.shape(x), 0.03)
+    for name in frontier:
+        px, py = sc.positions[name]
+        p_clear += 0.7 * np.exp(-((x - px) ** 2 + (y - py) ** 2) / (2.0 * 2.0**2))
+    change = hash_unit(fu, fv, 43)
+    late[(cover == FOREST) & (change < np.minimum(p_clear, 0.9))] = CROPLAND
+    # Fallow rotation and a few new orchards on the farmland.
+    rotate = hash_unit(fu, fv, 47)
+    late[(cover == CROPLAND) & (rotate < 0.08)] = GRASSLAND
+    late[(cover == GRASSLAND) & (rotate < 0.10)] = CROPLAND
+    late[(cover == CROPLAND) & (rotate > 0.97)] = ORCHARD
+    late[built_mask(sc, x, y, 2021, frontier)] = BUILT
+    late[water] = WATER
+    return early.astype(np.uint8), late.astype(np.uint8), tuple(frontier)
+
+
+def frontier_villages(sc, x, y, cover_2015):
+    """The rural villages with the most forest within 3 km in 2015."""
+    forest = cover_2015 == FOREST
+    shares = []
+    for name in VILLAGE_NAMES:
+        if name in sc.urban:
+            continue
+        px, py = sc.positions[name]
+        near = (x - px) ** 2 + (y - py) ** 2 < 9.0
+        shares.append((-float(forest[near].mean()), name))
+    return tuple(name for _, name in sorted(shares)[:N_FRONTIER_VILLAGES])
+
+
+def make_land_cover(sc):
+    transform, width, height = latlon_grid(LAND_COVER_RES_DEG)
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    early, late, frontier = land_cover_maps(sc, x, y)
+    # A strip without data in the north-east margin, outside every buffer.
+    lon, lat = to_lonlat(x, y)
+    gap = (lon > 5.53) & (lat > -11.47)
+    early[gap] = LAND_COVER_NODATA
+    late[gap] = LAND_COVER_NODATA
+    return early, late, frontier, transform
+
+
+#: NDVI typical of each invented class, blended with the scenario's own field.
+CLASS_NDVI = {
+    CROPLAND: 0.48, ORCHARD: 0.62, FOREST: 0.80, SCRUB: 0.30, GRASSLAND: 0.40,
+    BUILT: 0.12, WATER: -0.15,
+}  # fmt: skip
+
+
+def make_red_nir(sc, rng, frontier):
+    """Red and near-infrared reflectance x 10000 (int16) of 2021; 0 in cloud gaps.
+
+    The NDVI they imply follows the 2021 land cover (cleared forest and new
+    built land are less green than in ndvi_2021.tif, which predates them).
+    """
+    transform, width, height = latlon_grid(BANDS_RES_DEG)
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    _, cover, _ = land_cover_maps(sc, x, y, frontier)
+    typical = np.zeros(np.shape(x))
+    for code, value in CLASS_NDVI.items():
+        typical[cover == code] = value
+    lake = lake_radius(x, y) < 1.0
+    # The river is much narrower than a pixel: those pixels are mostly land.
+    typical[(cover == WATER) & ~lake] = 0.3
+    ndvi = 0.5 * land_ndvi(sc, x, y) + 0.5 * typical
+    ndvi = np.where(lake, -0.15 + 0.03 * np.sin(x * 1.7), ndvi)
+    greenness = np.clip(ndvi, 0.0, 0.9) / 0.9
+    red = np.where(lake, 0.045, 0.03 + 0.17 * (1.0 - greenness) ** 1.5)
+    nir = red * (1.0 + ndvi) / (1.0 - ndvi)
+    # Soil and canopy brightness vary smoothly; the ratio (NDVI) does not.
+    bright = 1.0 + 0.16 * value_noise(x, y, 4.0, 53)
+    # Stored to 0.001 reflectance (multiples of 10): the files are a third smaller.
+    red_stored = np.clip(np.round(red * bright * 1000.0) * 10, 10, 10000).astype(np.int16)
+    nir_stored = np.clip(np.round(nir * bright * 1000.0) * 10, 10, 10000).astype(np.int16)
+    gap = sc.cloud_mask(x, y, band_clouds(sc, rng))
+    red_stored[gap] = 0
+    nir_stored[gap] = 0
+    return red_stored, nir_stored, transform
+
+
+def band_clouds(sc, rng):
+    """Cloud gaps of the red/NIR scene: one over part of Wickering Flats, three
+    elsewhere at least 8 km from every village (so no village loses all its data)."""
+    px, py = sc.positions["Wickering Flats"]
+    ang = rng.uniform(0, 2 * np.pi)
+    cx, cy, s = [px + 1.6 * math.cos(ang)], [py + 1.6 * math.sin(ang)], [1.3]
+    while len(cx) < 4:
+        x, y = rng.uniform(-55, 55), rng.uniform(-55, 55)
+        if all(math.hypot(x - vx, y - vy) >= 8.0 for vx, vy in sc.positions.values()):
+            cx.append(x)
+            cy.append(y)
+            s.append(rng.uniform(1.5, 3.0))
+    return np.array(cx), np.array(cy), np.array(s), 29
+
+
+def make_population(sc, frontier):
+    """People per km² (float32) in 2021; -1 in a corner of the margin."""
+    transform, width, height = latlon_grid(POPULATION_RES_DEG)
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    _, cover, _ = land_cover_maps(sc, x, y, frontier)
+    names = VILLAGE_NAMES
+    cx = np.array([sc.positions[n][0] for n in names])
+    cy = np.array([sc.positions[n][1] for n in names])
+    hh = np.array([sc.households[n] for n in names], dtype=np.float64)
+    urban = np.array([n in sc.urban for n in names])
+    people = hh * np.where(urban, PERSONS_PER_HOUSEHOLD["urban"], PERSONS_PER_HOUSEHOLD["rural"])
+    sigma = np.where(urban, 0.7 + 0.4 * np.sqrt(hh / 4200.0), 0.45 + 0.2 * np.sqrt(hh / 650.0))
+    # Each village's people spread as a Gaussian: its integral is ``people``.
+    density = gauss_bumps(x, y, cx, cy, sigma, people / (2.0 * math.pi * sigma**2))
+    # Scattered homesteads: more on farmland, few in forest and scrub.
+    spread = np.select(
+        [cover == FOREST, cover == SCRUB, cover == WATER], [0.25, 0.4, 0.0], default=1.0
+    )
+    density += spread * (5.0 + 6.0 * value_noise(x, y, 3.0, 61))
+    density = np.where(cover == WATER, 0.0, density)
+    # Whole people per km2: exact in float32, and the file stays small.
+    density = np.round(density).astype(np.float32)
+    lon, lat = to_lonlat(x, y)
+    density[(lon < 4.47) & (lat < -12.53)] = -1.0
+    return density, transform
+
+
+def district_polygons(sc):
+    """Four district polygons that partition the study area (EPSG:4326).
+
+    Four wavy boundaries run from a common hub to the edge of the area;
+    neighbouring districts share the boundary's vertices exactly, so the
+    polygons neither overlap nor leave gaps.
+    """
+    from shapely.geometry import Point, Polygon, box
+
+    hx, hy = DISTRICT_HUB
+    west, south, east, north = DISTRICT
+    ex0, ey0 = to_km(west, south)
+    ex1, ey1 = to_km(east, north)
+    spokes = []
+    for k, bearing in enumerate(DISTRICT_SPOKES):
+        dx, dy = math.sin(math.radians(bearing)), math.cos(math.radians(bearing))
+        # Distance from the hub to the edge of the area along the bearing.
+        reach = min(
+            ((ex1 if dx > 0 else ex0) - hx) / dx if abs(dx) > 1e-12 else np.inf,
+            ((ey1 if dy > 0 else ey0) - hy) / dy if abs(dy) > 1e-12 else np.inf,
+        )
+        t = np.linspace(0.0, 1.0, 61)
+        wiggle = 2.2 * np.sin(np.pi * t) * np.sin(2 * np.pi * t * (2.0 + 0.5 * k) + k)
+        px = hx + t * reach * dx + wiggle * dy
+        py = hy + t * reach * dy - wiggle * dx
+        lon, lat = to_lonlat(px, py)
+        pts = [(round(float(a), 7), round(float(b), 7)) for a, b in zip(lon, lat, strict=True)]
+        # The last vertex exactly on the edge, so the districts fill the area.
+        end_lon = min(max(pts[-1][0], west), east)
+        end_lat = min(max(pts[-1][1], south), north)
+        pts[-1] = (end_lon, end_lat)
+        spokes.append(pts)
+    # Corners clockwise from the north-east; a position along the edge,
+    # measured clockwise from that corner, orders spoke ends and corners.
+    corners = [(east, north), (east, south), (west, south), (west, north)]
+    w, h = east - west, north - south
+    perimeter = 2 * (w + h)
+
+    def edge_position(pt):
+        lon, lat = pt
+        if abs(lon - east) < 1e-6:
+            return north - lat
+        if abs(lat - south) < 1e-6:
+            return h + (east - lon)
+        if abs(lon - west) < 1e-6:
+            return h + w + (lat - south)
+        return 2 * h + w + (lon - west)
+
+    corner_pos = [0.0, h, h + w, 2 * h + w]
+    polys = []
+    for k in range(len(spokes)):
+        a, b = spokes[k], spokes[(k + 1) % len(spokes)]
+        pa, pb = edge_position(a[-1]), edge_position(b[-1])
+        if pb <= pa:
+            pb += perimeter
+        between = sorted(
+            (pc + lap, c)
+            for lap in (0.0, perimeter)
+            for c, pc in zip(corners, corner_pos, strict=True)
+            if pa < pc + lap < pb
+        )
+        ring = a + [c for _, c in between] + b[::-1][:-1]
+        poly = Polygon(ring)
+        if not poly.is_valid:
+            raise RuntimeError(f"invalid district polygon {DISTRICTS[k][0]}")
+        polys.append(poly)
+    area = box(*DISTRICT)
+    total_area = sum(p.area for p in polys)
+    if abs(total_area - area.area) > 1e-9 * area.area:
+        raise RuntimeError("the districts do not partition the study area")
+    for name in VILLAGE_NAMES:
+        lon, lat = to_lonlat(*sc.positions[name])
+        inside = [p.contains(Point(float(lon), float(lat))) for p in polys]
+        if sum(inside) != 1:
+            raise RuntimeError(f"village {name} is not in exactly one district")
+    return polys
+
+
+def district_totals(polys, density, transform):
+    """Invented census totals: each district's raster total times its factor, to 10 people."""
+    import shapely
+    from pyproj import Geod
+
+    height, width = density.shape
+    cols, rows = np.meshgrid(np.arange(width) + 0.5, np.arange(height) + 0.5)
+    lon, lat = transform * (cols, rows)
+    # Ground area of one pixel per row (km2), on the WGS84 ellipsoid.
+    geod = Geod(ellps="WGS84")
+    res_x, res_y = transform.a, -transform.e
+    row_area = np.empty(height)
+    for r in range(height):
+        top = transform.f - r * res_y
+        xs = [0.0, res_x, res_x, 0.0]
+        ys = [top, top, top - res_y, top - res_y]
+        row_area[r] = abs(geod.polygon_area_perimeter(xs, ys)[0]) / 1e6
+    people = np.where(density >= 0, density, 0.0) * row_area[:, None]
+    totals = []
+    for poly, factor in zip(polys, DISTRICT_TOTAL_FACTORS, strict=True):
+        inside = shapely.contains_xy(poly, lon, lat)
+        totals.append(int(round(float(people[inside].sum()) * factor, -1)))
+    return totals
+
+
+def write_districts(path, polys):
+    import geopandas as gpd
+
+    gdf = gpd.GeoDataFrame(
+        {
+            "district_id": [d for d, _ in DISTRICTS],
+            "district_name": [n for _, n in DISTRICTS],
+        },
+        geometry=polys,
+        crs="EPSG:4326",
+    )
+    write_gpkg_frame(path, gdf, "districts")
 
 
 # ------------------------------------------------------ villages & clusters
@@ -521,10 +898,7 @@ def write_csv(path, rows):
 
 def write_gpkg(path, rows, polys, rng):
     import geopandas as gpd
-    import pyogrio
 
-    if path.exists():
-        path.unlink()
     # Features in a different order from villages.csv, so a join by position
     # instead of by id gives visibly wrong results.
     ids = [row["village_id"] for row in rows]
@@ -532,10 +906,18 @@ def write_gpkg(path, rows, polys, rng):
     ids = [ids[i] for i in order]
     gdf = gpd.GeoDataFrame({"village_id": ids}, geometry=[polys[i] for i in ids], crs="EPSG:4326")
     gdf["village_id"] = gdf["village_id"].astype(object)
+    write_gpkg_frame(path, gdf, "village_areas")
+
+
+def write_gpkg_frame(path, gdf, layer):
+    import pyogrio
+
+    if path.exists():
+        path.unlink()
     # GDAL stamps gpkg_contents.last_change with the current time unless told.
     pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": GPKG_DATE})
     try:
-        pyogrio.write_dataframe(gdf, path, layer="village_areas", driver="GPKG")
+        pyogrio.write_dataframe(gdf, path, layer=layer, driver="GPKG")
     finally:
         pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": None})
 
@@ -550,9 +932,9 @@ RECIPE_TEMPLATE = """\
 # it for analysis.
 #
 # A recipe answers three questions: which study records (here: 40 villages),
-# which rasters (vegetation, surface temperature, night lights), and which
-# summaries of each raster to add as new columns. Relative paths are relative
-# to the folder of this file.{header_note}
+# which rasters (vegetation, surface temperature, night lights, land cover in
+# 2015 and 2021), and which summaries of each raster to add as new columns.
+# Relative paths are relative to the folder of this file.{header_note}
 
 version: 1                      # recipe format version; always 1 for now
 
@@ -574,7 +956,7 @@ units:
 
 layers:
   # One entry per raster, under a short name of your choice; the name starts
-  # the output columns (ndvi_mean, ...). The three rasters use three different
+  # the output columns (ndvi_mean, ...). The rasters use three different
   # coordinate systems; the buffers are projected to each raster, the rasters
   # are never resampled.
   ndvi:
@@ -609,6 +991,31 @@ layers:
     version: "demo 2021"
     citation: "invented demo data; not a real product, not for analysis"
     license: "invented demo data, distributed with covextract (MIT)"
+  cover_2015:
+    # Land cover in 2015: one class code per pixel (8-bit integers) on the
+    # same lat/lon grid as ndvi; 0 means no data (the file says so itself).
+    # The legend below is invented for the demo; its codes were chosen not to
+    # match any real land-cover product. Codes found in the file but missing
+    # from classes are counted as "other" (with a warning).
+    file: {prefix}land_cover_2015.tif
+    kind: categorical           # class codes, not measured quantities
+    classes: {classes}
+    groups: {{tree_cover: [12, 21]}}   # orchard and forest, also counted together
+    source: "invented demo data (covextract demo scenario)"
+    version: "demo 2015"
+    citation: "invented demo data; not a real product, not for analysis"
+    license: "invented demo data, distributed with covextract (MIT)"
+  cover_2021:
+    # The same legend six years later, on the same grid: some forest became
+    # fields or houses, and the towns grew.
+    file: {prefix}land_cover_2021.tif
+    kind: categorical
+    classes: {classes}
+    groups: {{tree_cover: [12, 21]}}
+    source: "invented demo data (covextract demo scenario)"
+    version: "demo 2021"
+    citation: "invented demo data; not a real product, not for analysis"
+    license: "invented demo data, distributed with covextract (MIT)"
 
 covariates:
   # Each entry adds columns named <layer>_<statistic>, plus one <layer>_qa
@@ -632,6 +1039,21 @@ covariates:
     # background glow.
     stats: [density_total, mean, area_above]
     threshold: 1.0              # nW/cm2/sr
+  - layer: cover_2021
+    # share: one column per class and group (cover_2021_share_forest, ...,
+    # cover_2021_share_tree_cover) plus cover_2021_share_other for codes
+    # outside the legend; the class shares and "other" add up to 1. dominant:
+    # the class covering most of the buffer. shannon: Shannon diversity of the
+    # classes, 0 when one class covers everything, higher for a finer mix.
+    stats: [share, dominant, shannon]
+  - layer: cover_2021
+    name: cover_change          # columns cover_change_..., not cover_2021_...
+    since: cover_2015           # compare with the 2015 map (same grid, same classes)
+    # transition_A_to_B: share of the buffer that was A in 2015 and is B in
+    # 2021 ("any" as A: any class other than B). net_change_<class>: 2021
+    # share minus 2015 share, one column per class and group.
+    stats: [transition, net_change]
+    pairs: [[forest, cropland], [any, built]]
 
 output:
   table: out/villages_covariates.csv   # the study table with the new columns
@@ -642,7 +1064,8 @@ output:
 
 
 def recipe_text(prefix, header_note=""):
-    return RECIPE_TEMPLATE.format(prefix=prefix, header_note=header_note)
+    classes = "{" + ", ".join(f"{c}: {lbl}" for c, lbl in LAND_COVER_CLASSES.items()) + "}"
+    return RECIPE_TEMPLATE.format(prefix=prefix, header_note=header_note, classes=classes)
 
 
 # ------------------------------------------------------------------- main
@@ -694,6 +1117,59 @@ def build(data_dir: Path, recipes_dir: Path | None) -> dict[str, str]:
         predictor=3,
         description="night-time light radiance (invented)",
         unit="nW/cm2/sr",
+    )
+
+    # The layers added later draw from their own generator, so the files
+    # above keep their bytes whatever is added here.
+    rng_more = np.random.default_rng([SEED, 2])
+    early, late, frontier, tr = make_land_cover(sc)
+    for year, cover in ((2015, early), (2021, late)):
+        write_tif(
+            data_dir / f"land_cover_{year}.tif",
+            cover,
+            tr,
+            CRS.from_epsg(4326),
+            LAND_COVER_NODATA,
+            block=256,
+            predictor=1,  # class codes: differencing neighbours does not help
+            description=f"land cover {year}, invented legend: "
+            + ", ".join(f"{c} = {lbl}" for c, lbl in LAND_COVER_CLASSES.items()),
+            unit="class code",
+        )
+    red, nir, tr = make_red_nir(sc, rng_more, frontier)
+    for band, values in (("red", red), ("nir", nir)):
+        write_tif(
+            data_dir / f"{band}_2021.tif",
+            values,
+            tr,
+            CRS.from_epsg(4326),
+            0,
+            block=256,
+            predictor=2,
+            description=f"{band} reflectance x 10000 (invented)",
+            unit="reflectance x 10000",
+        )
+    population, tr = make_population(sc, frontier)
+    write_tif(
+        data_dir / "population_2021.tif",
+        population,
+        tr,
+        CRS.from_epsg(4326),
+        -1.0,
+        block=256,
+        predictor=3,
+        description="population density (invented)",
+        unit="people per km2",
+    )
+    districts = district_polygons(sc)
+    write_districts(data_dir / "districts.gpkg", districts)
+    totals = district_totals(districts, population, tr)
+    write_csv(
+        data_dir / "district_totals.csv",
+        [
+            {"district_id": d, "population": str(n)}
+            for (d, _), n in zip(DISTRICTS, totals, strict=True)
+        ],
     )
 
     (data_dir / "recipe.yaml").write_text(recipe_text(""), encoding="utf-8")

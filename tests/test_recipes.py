@@ -23,11 +23,16 @@ VILLAGE_COLUMNS = [
     "village_id", "village_name", "settlement", "buffer_radius_m", "visit_date",
     "households", "notes",
 ]
+# the invented land-cover legend of the demo, in code order
+CLASSES = ("cropland", "orchard", "forest", "scrub", "grassland", "built", "water")
 DEMO_NEW = [
     "ndvi_mean", "ndvi_std", "ndvi_q90", "ndvi_valid_share", "ndvi_qa",
     "surface_temp_mean", "surface_temp_min", "surface_temp_max", "surface_temp_qa",
     "lights_density_total", "lights_mean", "lights_area_above", "lights_qa",
-]
+] + [f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")] + [
+    "cover_2021_dominant", "cover_2021_shannon", "cover_2021_qa",
+    "cover_change_transition_forest_to_cropland", "cover_change_transition_any_to_built",
+] + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa"]
 # The columns each recipe documents (in its comments and in the README), in order:
 # the study table's columns minus output.drop, then <layer or name>_<stat> and
 # <layer or name>_qa per covariate.
@@ -47,6 +52,15 @@ EXPECTED = {
         "surface_temp_mean", "surface_temp_qa",
         "lights_density_total", "lights_share_above", "lights_qa",
     ]),
+    "land_cover_change.yaml": ("villages.csv", VILLAGE_COLUMNS + [
+        f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")
+    ] + ["cover_2021_dominant", "cover_2021_shannon", "cover_2021_valid_share", "cover_2021_qa",
+         "cover_change_transition_forest_to_cropland", "cover_change_transition_forest_to_built",
+         "cover_change_transition_any_to_built"]
+      + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa",
+         "cover_change_5km_transition_forest_to_cropland", "cover_change_5km_transition_any_to_built"]
+      + [f"cover_change_5km_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+      + ["cover_change_5km_qa"]),
     "village_boundaries.yaml": ("villages.csv", VILLAGE_COLUMNS + [
         "ndvi_mean", "ndvi_median", "ndvi_q10", "ndvi_q90", "ndvi_valid_share", "ndvi_qa",
         "ndvi_center_mean", "ndvi_center_valid_share", "ndvi_center_qa",
@@ -81,7 +95,7 @@ def test_recipe_runs_with_the_documented_columns(path):
     assert result.outputs == {}
     # Every record, in the order of the file, with its id as written ("003", not 3).
     assert list(table.iloc[:, 0]) == _ids(table_name)
-    new = [c for c in result.columns if not c.endswith("_qa")]
+    new = [c for c in result.columns if not c.endswith(("_qa", "_dominant"))]
     values = table[new].to_numpy(dtype=float)
     # No covariate is wholly missing on the demo data (all units lie on every layer).
     assert np.isfinite(values).any(axis=0).all()
