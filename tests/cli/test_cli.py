@@ -38,9 +38,9 @@ def test_run_writes_the_outputs_and_prints_where_they_are(demo_dir):
     recipe = demo_dir / "recipe.yaml"
     result = runner.invoke(app, ["run", str(recipe)])
     assert result.exit_code == 0, result.output
-    assert "40 units, 4 layers (cover_2021, lights, ndvi, surface_temp), 36 new columns" in result.stdout
-    # the two land-cover covariates share the NDVI grid's weights within the run
-    assert "weights built: 3, reused from cache: 2" in result.stdout
+    assert "40 units, 5 layers (cover_2021, lights, ndvi, surface_temp, veg), 47 new columns" in result.stdout
+    # four grids; covariates on a grid already seen in the run reuse its weights
+    assert "weights built: 4, reused from cache: 4" in result.stdout
     paths = printed_outputs(result.stdout)
     out = demo_dir / "out"
     assert paths == {
@@ -55,7 +55,7 @@ def test_run_writes_the_outputs_and_prints_where_they_are(demo_dir):
     assert result.stderr == ""
     again = runner.invoke(app, ["run", str(recipe)])
     assert again.exit_code == 0
-    assert "weights built: 0, reused from cache: 5" in again.stdout
+    assert "weights built: 0, reused from cache: 8" in again.stdout
 
 
 def test_run_quiet_prints_nothing_and_still_writes(demo_dir):

@@ -57,10 +57,10 @@ def test_pipeline_second_run_builds_no_weights_and_unit_change_rebuilds(tmp_path
 
     folder = lay_out_demo(tmp_path / "demo")
     first = run(folder / "recipe.yaml")
-    # three grids; the land-cover covariates reuse the NDVI grid's weights within the run
-    assert first.summary["weights_built"] == 3 and first.summary["weights_from_cache"] == 2
+    # four grids; covariates on a grid already seen in the run reuse its weights
+    assert first.summary["weights_built"] == 4 and first.summary["weights_from_cache"] == 4
     second = run(folder / "recipe.yaml")
-    assert second.summary["weights_built"] == 0 and second.summary["weights_from_cache"] == 5
+    assert second.summary["weights_built"] == 0 and second.summary["weights_from_cache"] == 8
     # move one village by a few hundred metres: its unit set changes, weights are rebuilt
     csv = folder / "villages.csv"
     lines = csv.read_text().splitlines()
@@ -71,11 +71,11 @@ def test_pipeline_second_run_builds_no_weights_and_unit_change_rebuilds(tmp_path
     lines[1] = ",".join(cells)
     csv.write_text("\n".join(lines) + "\n")
     third = run(folder / "recipe.yaml")
-    assert third.summary["weights_built"] == 3
+    assert third.summary["weights_built"] == 4
     # corrupt every cached file: the next run warns and rebuilds
     for f in (folder / ".covextract-state" / "weights").glob("*.npz"):
         f.write_bytes(b"broken")
     with pytest.warns(CacheWarning):
         fourth = run(folder / "recipe.yaml")
-    assert fourth.summary["weights_built"] == 3
+    assert fourth.summary["weights_built"] == 4
     assert fourth.table.equals(third.table)

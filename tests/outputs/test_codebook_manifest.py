@@ -67,10 +67,11 @@ def test_codebook_rows_carry_layer_source_and_metadata(demo_run, codebook):
         named = [c.get("name") for c in recipe["covariates"] if c["layer"] == row["layer"]]
         assert any(column.startswith((n or row["layer"]) + "_") for n in named)
         # relative to the recipe's folder, so the codebook reveals no local folder names
-        assert row["source_file"] == layer["file"]
+        first_file = layer["file"] if "file" in layer else next(iter(layer["bands"].values()))["file"]
+        assert row["source_file"] == first_file
         assert str(folder) not in row["source_file"]
         for key in ("source", "version", "citation", "license"):
-            assert row[key] == layer[key], (column, key)
+            assert row[key] == layer.get(key, ""), (column, key)
         assert row["unit_shape"] == "geodesic buffer of 2000 m around each point"
         assert row["pixel_rule"].startswith("overlap: ")
 
@@ -159,12 +160,14 @@ def test_manifest_fingerprints_every_input(demo_run, manifest):
     roles = {item["role"]: item for item in manifest["inputs"]}
     assert set(roles) == {
         "recipe", "study_table", "layer:ndvi", "layer:surface_temp", "layer:lights",
-        "layer:cover_2015", "layer:cover_2021",
+        "layer:cover_2015", "layer:cover_2021", "layer:veg.red", "layer:veg.nir", "layer:pop",
     }
     files = {
         "recipe": "recipe.yaml", "study_table": "villages.csv", "layer:ndvi": "ndvi_2021.tif",
         "layer:surface_temp": "surface_temp_2021.tif", "layer:lights": "night_lights_2021.tif",
         "layer:cover_2015": "land_cover_2015.tif", "layer:cover_2021": "land_cover_2021.tif",
+        "layer:veg.red": "red_2021.tif", "layer:veg.nir": "nir_2021.tif",
+        "layer:pop": "population_2021.tif",
     }
     for role, name in files.items():
         path = folder / name
@@ -184,10 +187,12 @@ def test_manifest_versions_and_layer_crs(demo_run, manifest):
     assert versions["gdal"] == rasterio.__gdal_version__
     assert versions["proj"] == pyproj.proj_version_str
     expected_crs = {"ndvi": "EPSG:4326", "surface_temp": "EPSG:32731", "lights": "EPSG:3857",
-                    "cover_2015": "EPSG:4326", "cover_2021": "EPSG:4326"}
+                    "cover_2015": "EPSG:4326", "cover_2021": "EPSG:4326", "veg": "EPSG:4326",
+                    "pop": "EPSG:4326"}
     files = {"ndvi": "ndvi_2021.tif", "surface_temp": "surface_temp_2021.tif",
              "lights": "night_lights_2021.tif", "cover_2015": "land_cover_2015.tif",
-             "cover_2021": "land_cover_2021.tif"}
+             "cover_2021": "land_cover_2021.tif", "veg": "red_2021.tif",
+             "pop": "population_2021.tif"}
     assert set(manifest["layers"]) == set(expected_crs)
     for name, crs in expected_crs.items():
         layer = manifest["layers"][name]
