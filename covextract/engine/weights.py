@@ -123,12 +123,19 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
     n_bcols = -(-grid.width // bw)
     row = np.asarray(coverage.row, dtype=np.int64)
     col = np.asarray(coverage.col, dtype=np.int64)
-    brow, bcol = row // bh, col // bw
-    block_id = brow * n_bcols + bcol
-    order = np.argsort(block_id, kind="stable")
+    n_blocks = n_bcols * -(-grid.height // bh)
+    block_id = (row // bh) * n_bcols + (col // bw)
+    # A stable sort keeps each block's entries in (unit, row, col) order. With fewer
+    # than 65 536 blocks the ids fit in uint16, for which numpy's stable sort is a
+    # radix sort: linear in the number of entries.
+    if n_blocks < 2**16:
+        order = np.argsort(block_id.astype(np.uint16), kind="stable")
+    else:
+        order = np.argsort(block_id, kind="stable")
+    counts = np.bincount(block_id, minlength=n_blocks)
+    ids = np.flatnonzero(counts)
+    starts = np.concatenate([[0], np.cumsum(counts[ids])]).astype(np.int64)
     block_id = block_id[order]
-    ids, first = np.unique(block_id, return_index=True)
-    starts = np.append(first, block_id.size).astype(np.int64)
     win_of = []
     for bid in ids:
         r0 = int(bid // n_bcols) * bh

@@ -25,6 +25,28 @@ __all__ = ["RasterSource", "open_layer", "describe_raster", "gdal_env"]
 GDAL_CACHE_BYTES = 256 * 1024 * 1024
 
 
+_CACHE_SET = False
+
+
+def _set_block_cache() -> None:
+    """Set GDAL's block cache size once per process (not GDAL's default share of RAM).
+
+    Entering a ``rasterio.Env`` for every block read costs more than many small
+    reads themselves, so the option is set process-wide when the first dataset
+    handle is opened.
+    """
+    global _CACHE_SET
+    if _CACHE_SET:
+        return
+    try:
+        from rasterio._env import set_gdal_config
+
+        set_gdal_config("GDAL_CACHEMAX", GDAL_CACHE_BYTES)
+    except (ImportError, TypeError):  # pragma: no cover - private API changed; keep the default
+        pass
+    _CACHE_SET = True
+
+
 def gdal_env():
     """A rasterio ``Env`` with the block cache size set explicitly."""
     import rasterio
@@ -79,6 +101,7 @@ class RasterSource:
 
         ds = getattr(self._local, "ds", None)
         if ds is None or ds.closed:
+            _set_block_cache()
             ds = rasterio.open(self.path)
             self._local.ds = ds
         return ds
@@ -92,8 +115,7 @@ class RasterSource:
         from rasterio.windows import Window
 
         r0, c0, h, w = window
-        with gdal_env():
-            return self._dataset().read(self.band, window=Window(c0, r0, w, h))
+        return self._dataset().read(self.band, window=Window(c0, r0, w, h))
 
     def to_values(self, stored: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Physical float64 values and the valid mask of a stored block."""

@@ -99,3 +99,14 @@ def test_bounded_unit_groups_give_identical_values(scene, tmp_path):
     assert split.qa == whole.qa
     again = zonal_units(src, geoms, STATS, max_entries=2000, cache=cache, units_fingerprint="f")
     assert again.weights_builds == 0 and cache.hits == len(groups)
+
+
+def test_gdal_block_cache_is_set_explicitly(scene):
+    from rasterio._env import get_gdal_config
+
+    from covextract.io.rasters import GDAL_CACHE_BYTES
+
+    path, _ = scene
+    src = open_layer(path)
+    src.read_block((0, 0, 32, 32))
+    assert int(get_gdal_config("GDAL_CACHEMAX")) == GDAL_CACHE_BYTES
