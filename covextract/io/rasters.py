@@ -87,6 +87,10 @@ class RasterSource:
     ceiling: float | None = None
     _local: threading.local = field(default_factory=threading.local, repr=False, compare=False)
 
+    #: ``to_values`` works pixel by pixel, so the engine may convert only the
+    #: pixels its weights use.
+    elementwise = True
+
     def __getstate__(self):
         state = self.__dict__.copy()
         state.pop("_local", None)  # dataset handles never travel between processes
