@@ -438,6 +438,27 @@ class _Clipped:
         return values, valid
 
 
+def _report_unknown_codes(name, layer, src) -> None:
+    """Warn (at check time) about codes of a categorical raster missing from its class table."""
+    from covextract.io.rasters import sample_values
+
+    try:
+        seen = sample_values(src)
+    except Exception:  # noqa: BLE001 - a failed sample must not hide the real problems
+        return
+    known = {float(c) for c in (layer.classes or {})}
+    unknown = [float(v) for v in seen if float(v) not in known]
+    if unknown:
+        warnings.warn(
+            f"layer {name!r} holds codes not in its class table ("
+            + ", ".join(_code_text(c) for c in unknown[:10])
+            + f"{', ...' if len(unknown) > 10 else ''}); they will be counted as 'other'. "
+            "Add them to classes: to name them.",
+            UnknownClassWarning,
+            stacklevel=_user_stacklevel(),
+        )
+
+
 def _categorical_config(cov, layer, sources, problem, i):
     """Class table, groups, pairs and earlier layer of a categorical covariate."""
     from covextract.engine.categorical import ClassTable, PairedSource
@@ -520,6 +541,10 @@ def check_recipe(recipe) -> list:
         plan = plan_recipe(recipe, collect=True)
     except RecipeError as exc:
         return list(exc.problems)
+    for name, src in plan.sources.items():
+        layer = plan.recipe.layers[name]
+        if getattr(layer, "kind", "continuous") == "categorical":
+            _report_unknown_codes(name, layer, src)
     return plan.problems
 
 

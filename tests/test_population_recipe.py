@@ -123,3 +123,18 @@ def test_proxy_input_problems_are_explained(demo_dir):
         path.write_text("\n".join(text) + "\n")
         run(_recipe(demo_dir, [{"layer": "lights", "name": "hh", "stats": ["predicted"],
                                 "calibrate": {"known": "households"}}]), write=False)
+
+
+def test_unit_outside_every_zone_is_missing_with_a_reason(demo_dir):
+    # a village moved into the raster's margin, outside all four districts
+    path = demo_dir / "villages.csv"
+    text = path.read_text().splitlines()
+    head = text[0].split(",")
+    cells = text[1].split(",")
+    cells[head.index("lon")], cells[head.index("lat")] = "5.56", "-12.0"
+    text[1] = ",".join(cells)
+    path.write_text("\n".join(text) + "\n")
+    result = run(_recipe(demo_dir, [REALLOCATE]), write=False)
+    assert np.isnan(float(result.table["pop_alloc_allocated"][0]))
+    assert "outside_zones" in result.table["pop_alloc_qa"][0]
+    assert np.isfinite(result.table["pop_alloc_allocated"][1:].astype(float)).all()

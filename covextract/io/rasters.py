@@ -282,3 +282,20 @@ def describe_raster(path) -> dict:
             }
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(f"{path} cannot be opened as a raster ({exc}).") from exc
+
+
+def sample_values(source, *, max_side: int = 1024):
+    """Distinct valid stored values of a raster read at reduced resolution.
+
+    For ``check``: lists the codes a categorical layer holds without reading
+    every pixel (a decimated read of at most ``max_side`` pixels a side; rare
+    codes in small patches may be missed, which the run itself reports).
+    """
+    import rasterio
+
+    with rasterio.open(source.path) as ds:
+        h, w = ds.height, ds.width
+        f = max(1, int(np.ceil(max(h, w) / max_side)))
+        data = ds.read(source.band, out_shape=(max(1, h // f), max(1, w // f)))
+    values, valid = source.to_values(data)
+    return np.unique(values[valid])
