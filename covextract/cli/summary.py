@@ -17,6 +17,12 @@ def print_summary(result, *, max_rows: int = 8) -> None:
     console.print(
         f"weights built: {s['weights_built']}, reused from cache: {s['weights_from_cache']}"
     )
+    for name, fit in s.get("proxy_fits", {}).items():
+        console.print(
+            f"calibration {name}: log(count) = {fit['a']:.4g} + {fit['b']:.4g} log(light); "
+            f"R2 {fit['r2']:.3f}, RMSE {fit['rmse']:.3g} (log scale), n {fit['n']}, "
+            f"smearing {fit['smearing']:.4g}"
+        )
     missing = {k: v for k, v in s["units_without_values"].items() if v}
     if missing:
         console.print(

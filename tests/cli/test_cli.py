@@ -41,6 +41,9 @@ def test_run_writes_the_outputs_and_prints_where_they_are(demo_dir):
     assert "40 units, 5 layers (cover_2021, lights, ndvi, surface_temp, veg), 47 new columns" in result.stdout
     # four grids; covariates on a grid already seen in the run reuse its weights
     assert "weights built: 4, reused from cache: 4" in result.stdout
+    # the population-proxy fit is part of the summary (a, b, R2, RMSE, n, smearing)
+    assert "calibration hh_fit: log(count) = " in result.stdout
+    assert "smearing" in result.stdout
     paths = printed_outputs(result.stdout)
     out = demo_dir / "out"
     assert paths == {
