@@ -92,10 +92,17 @@ def zonal_statistics(
     point = pixels in POINT_METHODS
     parsed = [parse_stat(s, point=point) for s in stats]
     src = open_layer(raster, band=band, nodata=nodata, scale=scale, offset=offset)
-    geoms = units.geometry.to_crs(CRS.from_user_input(src.grid.crs)) if units.crs != src.grid.crs else units.geometry
+    geoms = (
+        units.geometry.to_crs(CRS.from_user_input(src.grid.crs))
+        if units.crs != src.grid.crs
+        else units.geometry
+    )
     arr = np.array([None if (g is None or g.is_empty) else g for g in geoms], dtype=object)
     res = zonal(src, arr, parsed, rule=pixels, area_weighting=area_weighting, threshold=threshold)
-    index = pd.Index(units[id_column].astype(str) if id_column else units.index, name=id_column or units.index.name)
+    index = pd.Index(
+        units[id_column].astype(str) if id_column else units.index,
+        name=id_column or units.index.name,
+    )
     frame = pd.DataFrame({s.name: res.values[s.name] for s in parsed}, index=index)
     if with_qa:
         frame["qa"] = [";".join(c) for c in res.qa]

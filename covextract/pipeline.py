@@ -30,6 +30,7 @@ from covextract.stats.names import StatName, parse_stat
 
 __all__ = ["Plan", "CovariatePlan", "RunResult", "plan_recipe", "check_recipe", "run"]
 
+
 def _unit_qa_codes() -> dict:
     from covextract.units.build import QA_CODES
 
@@ -178,7 +179,6 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     CovextractError
         On the first problem, unless ``collect``.
     """
-    from covextract.io.rasters import open_layer
     from covextract.io.tables import read_study_table
 
     recipe = _load(recipe)
@@ -193,8 +193,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
             problems.extend(exc_or_msg.problems)
         else:
             problems.append(
-                RecipeProblem(str(exc_or_msg), key=key, file=_file(recipe),
-                              line=_line(recipe, key))
+                RecipeProblem(str(exc_or_msg), key=key, file=_file(recipe), line=_line(recipe, key))
             )
 
     paths = _output_paths(recipe)
@@ -228,7 +227,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     unit_sets: dict = {}
     boundaries_cache: dict = {}
     keys = []
-    for i, cov in enumerate(recipe.covariates):
+    for cov in recipe.covariates:
         k = _unit_key(recipe, cov)
         if k not in keys:
             keys.append(k)
@@ -269,7 +268,10 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         point = k[0] == "point"
         categorical = None
         proxy = None
-        if getattr(cov, "reallocate", None) is not None or getattr(cov, "calibrate", None) is not None:
+        if (
+            getattr(cov, "reallocate", None) is not None
+            or getattr(cov, "calibrate", None) is not None
+        ):
             proxy = _proxy_config(recipe, cov, table, problem, i)
             if proxy is None:
                 continue
@@ -327,10 +329,19 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
             owner.setdefault(col, str(i + 1))
         plans.append(
             CovariatePlan(
-                index=i, spec=cov, layer_name=cov.layer, prefix=prefix, stats=stats,
-                rule=rule, area_weighting=_weighting_text(cov.area_weighting),
-                threshold=cov.threshold, unit_key=k, columns=columns, qa_column=qa_col,
-                categorical=categorical, proxy=proxy,
+                index=i,
+                spec=cov,
+                layer_name=cov.layer,
+                prefix=prefix,
+                stats=stats,
+                rule=rule,
+                area_weighting=_weighting_text(cov.area_weighting),
+                threshold=cov.threshold,
+                unit_key=k,
+                columns=columns,
+                qa_column=qa_col,
+                categorical=categorical,
+                proxy=proxy,
             )
         )
 
@@ -393,13 +404,20 @@ def _open_source(recipe, name, layer):
         from covextract.derive.expression import parse_expression
 
         bands = {
-            bname: open_layer(recipe.resolve(b.file), band=b.band, nodata=b.nodata,
-                              scale=b.scale, offset=b.offset, crs=layer.crs,
-                              name=f"{name}.{bname}")
+            bname: open_layer(
+                recipe.resolve(b.file),
+                band=b.band,
+                nodata=b.nodata,
+                scale=b.scale,
+                offset=b.offset,
+                crs=layer.crs,
+                name=f"{name}.{bname}",
+            )
             for bname, b in layer.bands.items()
         }
-        expr = parse_expression(layer.index or layer.expression, bands,
-                                key=f"layers.{name}.expression")
+        expr = parse_expression(
+            layer.index or layer.expression, bands, key=f"layers.{name}.expression"
+        )
         src = BandMathSource(bands, expr)
         if layer.ceiling is not None or layer.valid_range is not None:
             src = _Clipped(src, layer.valid_range, layer.ceiling)
@@ -594,8 +612,16 @@ def run(
 
         client = connect(scheduler)
     try:
-        return _run_plan(plan, recipe, cache, started, write=write, progress=progress,
-                         threads=threads, client=client)
+        return _run_plan(
+            plan,
+            recipe,
+            cache,
+            started,
+            write=write,
+            progress=progress,
+            threads=threads,
+            client=client,
+        )
     finally:
         if client is not None:
             client.close()
@@ -631,10 +657,17 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
             summary_extra[cp.prefix] = cp.proxy.get("fit", {})
         else:
             res = zonal_units(
-                src, geoms, list(cp.spec.stats) if cp.categorical is not None else cp.stats,
-                rule=cp.rule, area_weighting="on" if weight_by else cp.area_weighting,
-                threshold=cp.threshold, cache=cache, units_fingerprint=units.fingerprint(),
-                progress=advance, threads=threads, client=client,
+                src,
+                geoms,
+                list(cp.spec.stats) if cp.categorical is not None else cp.stats,
+                rule=cp.rule,
+                area_weighting="on" if weight_by else cp.area_weighting,
+                threshold=cp.threshold,
+                cache=cache,
+                units_fingerprint=units.fingerprint(),
+                progress=advance,
+                threads=threads,
+                client=client,
                 categorical=_engine_categorical(cp),
             )
             for s, col in zip(cp.stats, cp.columns, strict=True):
@@ -716,7 +749,8 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         "layer": cp.layer_name,
         "pixel_rule": RULE_TEXT.get(cp.rule, cp.rule),
         "area_weighting": (
-            "on (grid pixel area varies)" if cp.area_weighting == "auto" and src.grid.area_varies
+            "on (grid pixel area varies)"
+            if cp.area_weighting == "auto" and src.grid.area_varies
             else ("off" if cp.area_weighting == "off" else "auto: not needed, pixel area constant")
         ),
         "unit_shape": units.description,
@@ -750,20 +784,35 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
             u = f"{unit} (summed over pixels)" if unit else ""
         else:
             u = unit
-        rows.append({**base, "column": col, "statistic": s.name, "definition": text,
-                     "unit_of_measure": u, "qa_codes": ""})
+        rows.append(
+            {
+                **base,
+                "column": col,
+                "statistic": s.name,
+                "definition": text,
+                "unit_of_measure": u,
+                "qa_codes": "",
+            }
+        )
     codes = {**_unit_qa_codes(), **qa_codes}
     if cp.proxy is not None:
         from covextract.derive import population
 
-        codes.update(population.REALLOCATION_QA_CODES if cp.proxy["kind"] == "reallocate"
-                     else population.CALIBRATION_QA_CODES)
-    rows.append({
-        **base, "column": cp.qa_column, "statistic": "qa",
-        "definition": "reason codes separated by ';', empty when all is well",
-        "unit_of_measure": "text",
-        "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
-    })
+        codes.update(
+            population.REALLOCATION_QA_CODES
+            if cp.proxy["kind"] == "reallocate"
+            else population.CALIBRATION_QA_CODES
+        )
+    rows.append(
+        {
+            **base,
+            "column": cp.qa_column,
+            "statistic": "qa",
+            "definition": "reason codes separated by ';', empty when all is well",
+            "unit_of_measure": "text",
+            "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
+        }
+    )
     return rows
 
 
@@ -774,8 +823,11 @@ def _source_text(src) -> str:
         + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
         + " are missing; physical value = stored x "
         + f"{src.scale!r} + {src.offset!r}, applied before any statistic"
-        + (f"; values above {src.ceiling!r} are set to {src.ceiling!r}"
-           if getattr(src, "ceiling", None) is not None else "")
+        + (
+            f"; values above {src.ceiling!r} are set to {src.ceiling!r}"
+            if getattr(src, "ceiling", None) is not None
+            else ""
+        )
     )
 
 
@@ -813,8 +865,9 @@ def _proxy_config(recipe, cov, table, problem, i):
         spec = cov.reallocate
         key = f"covariates[{i}].reallocate"
         try:
-            zones = read_boundaries(recipe.resolve(spec.zones.file), id_column=spec.zones.id,
-                                    layer=spec.zones.layer)
+            zones = read_boundaries(
+                recipe.resolve(spec.zones.file), id_column=spec.zones.id, layer=spec.zones.layer
+            )
             totals_table = read_study_table(recipe.resolve(spec.totals.file))
         except CovextractError as exc:
             problem(exc, key)
@@ -826,29 +879,49 @@ def _proxy_config(recipe, cov, table, problem, i):
                 return None
         ids = frame[spec.totals.id].astype(str).str.strip()
         if ids.duplicated().any():
-            problem(TableError(f"{key}.totals: zone ids listed twice in {spec.totals.file}: "
-                               + ", ".join(sorted(set(ids[ids.duplicated()]))[:5])), key)
+            problem(
+                TableError(
+                    f"{key}.totals: zone ids listed twice in {spec.totals.file}: "
+                    + ", ".join(sorted(set(ids[ids.duplicated()]))[:5])
+                ),
+                key,
+            )
             return None
         values = pd.to_numeric(frame[spec.totals.column], errors="coerce")
         lookup = dict(zip(ids, values, strict=True))
         zone_ids = [str(z) for z in zones["id"]]
         missing = [z for z in zone_ids if z not in lookup or not np.isfinite(lookup[z])]
         if missing:
-            problem(TableError(
-                f"{key}: zones without a usable total in {spec.totals.file} (column "
-                f"{spec.totals.column!r}): {', '.join(missing[:5])}"
-                + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
-                + ". Every zone needs a number; remove zones that have none from the zone file."
-            ), key)
+            problem(
+                TableError(
+                    f"{key}: zones without a usable total in {spec.totals.file} (column "
+                    f"{spec.totals.column!r}): {', '.join(missing[:5])}"
+                    + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
+                    + ". Every zone needs a number; remove zones that have none from the zone file."
+                ),
+                key,
+            )
             return None
         totals = np.array([lookup[z] for z in zone_ids], dtype=np.float64)
         if (totals < 0).any():
             bad = [z for z, t in zip(zone_ids, totals, strict=True) if t < 0]
-            problem(TableError(f"{key}: negative totals for zones {', '.join(bad[:5])}; totals "
-                               "are counts and cannot be negative"), key)
+            problem(
+                TableError(
+                    f"{key}: negative totals for zones {', '.join(bad[:5])}; totals "
+                    "are counts and cannot be negative"
+                ),
+                key,
+            )
             return None
-        return {"kind": "reallocate", "spec": spec, "zones": zones, "zone_ids": zone_ids,
-                "totals": totals, "stats": ["allocated"], "columns": ["allocated"]}
+        return {
+            "kind": "reallocate",
+            "spec": spec,
+            "zones": zones,
+            "zone_ids": zone_ids,
+            "totals": totals,
+            "stats": ["allocated"],
+            "columns": ["allocated"],
+        }
     spec = cov.calibrate
     key = f"covariates[{i}].calibrate.known"
     if table is None:
@@ -861,13 +934,23 @@ def _proxy_config(recipe, cov, table, problem, i):
     known = pd.to_numeric(text.where(text != "", None), errors="coerce")
     bad = text[(text != "") & known.isna() & raw.notna()]
     if len(bad):
-        problem(TableError(f"{key}: column {spec.known!r} has cells that are not numbers "
-                           f"(rows {', '.join(str(r + 1) for r in bad.index[:5])}: "
-                           f"{', '.join(repr(v) for v in bad.iloc[:5])}); leave unknown counts "
-                           "empty"), key)
+        problem(
+            TableError(
+                f"{key}: column {spec.known!r} has cells that are not numbers "
+                f"(rows {', '.join(str(r + 1) for r in bad.index[:5])}: "
+                f"{', '.join(repr(v) for v in bad.iloc[:5])}); leave unknown counts "
+                "empty"
+            ),
+            key,
+        )
         return None
-    return {"kind": "calibrate", "spec": spec, "known": known.to_numpy(dtype=np.float64),
-            "stats": ["predicted"], "columns": ["predicted", "lower", "upper"]}
+    return {
+        "kind": "calibrate",
+        "spec": spec,
+        "known": known.to_numpy(dtype=np.float64),
+        "stats": ["predicted"],
+        "columns": ["predicted", "lower", "upper"],
+    }
 
 
 def _run_proxy(cp, src, geoms, cache, units, advance, threads, client):
@@ -879,28 +962,52 @@ def _run_proxy(cp, src, geoms, cache, units, advance, threads, client):
         spec = cp.proxy["spec"]
         zones = cp.proxy["zones"].to_crs(src.grid.crs)
         out = reallocate(
-            src, np.array(list(zones.geometry), dtype=object), cp.proxy["totals"], geoms,
-            by=spec.by, threshold=spec.threshold, rule=cp.rule, zone_ids=cp.proxy["zone_ids"],
-            threads=threads, client=client, progress=advance,
+            src,
+            np.array(list(zones.geometry), dtype=object),
+            cp.proxy["totals"],
+            geoms,
+            by=spec.by,
+            threshold=spec.threshold,
+            rule=cp.rule,
+            zone_ids=cp.proxy["zone_ids"],
+            threads=threads,
+            client=client,
+            progress=advance,
         )
         cp.proxy["dark_zones"] = [cp.proxy["zone_ids"][j] for j in out.dark_zones]
-        res = ZonalResult(values={}, qa=out.qa, valid_share=np.asarray(out.valid_share),
-                          blocks_read=out.blocks_read, weights_built=True)
+        res = ZonalResult(
+            values={},
+            qa=out.qa,
+            valid_share=np.asarray(out.valid_share),
+            blocks_read=out.blocks_read,
+            weights_built=True,
+        )
         # the unit-by-zone pieces are rebuilt on every run (not cached yet)
         res.weights_builds = 0
         return res, {f"{cp.prefix}_allocated": np.asarray(out.values, dtype=np.float64)}
     spec = cp.proxy["spec"]
-    light = zonal_units(src, geoms, [parse_stat(spec.light)], rule=cp.rule,
-                        area_weighting=cp.area_weighting, cache=cache,
-                        units_fingerprint=units.fingerprint(), progress=advance,
-                        threads=threads, client=client)
+    light = zonal_units(
+        src,
+        geoms,
+        [parse_stat(spec.light)],
+        rule=cp.rule,
+        area_weighting=cp.area_weighting,
+        cache=cache,
+        units_fingerprint=units.fingerprint(),
+        progress=advance,
+        threads=threads,
+        client=client,
+    )
     x = light.values[spec.light]
     fit = calibrate(x, cp.proxy["known"])
     est, lo, hi, pqa = fit.predict(x)
     cp.proxy["fit"] = fit.summary()
     light.qa = [list(a) + list(b) for a, b in zip(light.qa, pqa, strict=True)]
-    return light, {f"{cp.prefix}_predicted": est, f"{cp.prefix}_lower": lo,
-                   f"{cp.prefix}_upper": hi}
+    return light, {
+        f"{cp.prefix}_predicted": est,
+        f"{cp.prefix}_lower": lo,
+        f"{cp.prefix}_upper": hi,
+    }
 
 
 def _proxy_codebook_rows(cp, base, layer) -> list[dict]:
@@ -908,8 +1015,11 @@ def _proxy_codebook_rows(cp, base, layer) -> list[dict]:
     unit = "people (proxy, not a count)"
     if cp.proxy["kind"] == "reallocate":
         spec = cp.proxy["spec"]
-        how = ("light x pixel area" if spec.by == "light"
-               else f"lit area (pixels with light > {spec.threshold!r})")
+        how = (
+            "light x pixel area"
+            if spec.by == "light"
+            else f"lit area (pixels with light > {spec.threshold!r})"
+        )
         dark = cp.proxy.get("dark_zones") or []
         text = (
             f"zone totals from {spec.totals.file} (column {spec.totals.column!r}) spread over "
@@ -919,13 +1029,22 @@ def _proxy_codebook_rows(cp, base, layer) -> list[dict]:
             + (f" (here: {', '.join(dark)})" if dark else "")
             + ". A proxy: lights miss unlit settlements and saturate in towns"
         )
-        rows.append({**base, "column": cp.columns[0], "statistic": "allocated",
-                     "definition": text, "unit_of_measure": unit, "qa_codes": ""})
+        rows.append(
+            {
+                **base,
+                "column": cp.columns[0],
+                "statistic": "allocated",
+                "definition": text,
+                "unit_of_measure": unit,
+                "qa_codes": "",
+            }
+        )
         return rows
     spec = cp.proxy["spec"]
     fit = cp.proxy.get("fit", {})
-    fit_text = ", ".join(f"{k} = {v:.6g}" if isinstance(v, float) else f"{k} = {v}"
-                         for k, v in fit.items())
+    fit_text = ", ".join(
+        f"{k} = {v:.6g}" if isinstance(v, float) else f"{k} = {v}" for k, v in fit.items()
+    )
     common = (
         f"fit of log(known count in column {spec.known!r}) = a + b log(light {spec.light}) on "
         "units with a known count > 0 and light > 0 (unlit units are left out and get no "
@@ -939,8 +1058,16 @@ def _proxy_codebook_rows(cp, base, layer) -> list[dict]:
         + common,
     }
     for col, suffix in zip(cp.columns, ("predicted", "lower", "upper"), strict=True):
-        rows.append({**base, "column": col, "statistic": suffix, "definition": texts[suffix],
-                     "unit_of_measure": unit, "qa_codes": ""})
+        rows.append(
+            {
+                **base,
+                "column": col,
+                "statistic": suffix,
+                "definition": texts[suffix],
+                "unit_of_measure": unit,
+                "qa_codes": "",
+            }
+        )
     return rows
 
 
@@ -948,7 +1075,12 @@ def _engine_categorical(cp):
     if cp.categorical is None:
         return None
     c = cp.categorical
-    return {"table": c["table"], "groups": c["groups"], "pairs": c["pairs"], "earlier": c["earlier"]}
+    return {
+        "table": c["table"],
+        "groups": c["groups"],
+        "pairs": c["pairs"],
+        "earlier": c["earlier"],
+    }
 
 
 def _code_text(code: float) -> str:
@@ -959,24 +1091,39 @@ def _categorical_codebook_rows(cp, base, layer) -> list[dict]:
     from covextract.outputs.codebook import CATEGORICAL_DEFINITIONS
 
     c = cp.categorical
-    legend = "; ".join(f"{_code_text(code)} = {lbl}" for code, lbl in zip(
-        c["table"].codes, c["table"].labels, strict=True))
+    legend = "; ".join(
+        f"{_code_text(code)} = {lbl}"
+        for code, lbl in zip(c["table"].codes, c["table"].labels, strict=True)
+    )
     groups = "; ".join(f"{g} = {', '.join(map(str, codes))}" for g, codes in c["groups"].items())
     rows = []
     for (suffix, stat), col in zip(c["columns"], cp.columns, strict=True):
         target = suffix.split("_", 1)[1] if "_" in suffix and stat in ("share",) else ""
         if stat == "net_change":
-            target = suffix[len("net_change_"):]
+            target = suffix[len("net_change_") :]
         text = CATEGORICAL_DEFINITIONS[stat].format(
-            label=target, since=c.get("since") or "", pair=suffix[len("transition_"):].replace("_to_", " -> "),
+            label=target,
+            since=c.get("since") or "",
+            pair=suffix[len("transition_") :].replace("_to_", " -> "),
         )
         text += f". Class table: {legend}" + (f"; groups: {groups}" if groups else "")
-        unit = {"dominant": "class label", "classes_present": "classes",
-                "shannon": "nats (natural log)"}.get(stat, "share 0-1")
+        unit = {
+            "dominant": "class label",
+            "classes_present": "classes",
+            "shannon": "nats (natural log)",
+        }.get(stat, "share 0-1")
         if stat == "net_change":
             unit = "share difference, -1 to 1"
-        rows.append({**base, "column": col, "statistic": stat, "definition": text,
-                     "unit_of_measure": unit, "qa_codes": ""})
+        rows.append(
+            {
+                **base,
+                "column": col,
+                "statistic": stat,
+                "definition": text,
+                "unit_of_measure": unit,
+                "qa_codes": "",
+            }
+        )
     return rows
 
 
@@ -1008,8 +1155,12 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
     if table_format(paths["table"]) == "gpkg":
         geometry, crs = _gpkg_geometry(plan)
     write_table(table, paths["table"], geometry=geometry, crs=crs)
-    write_codebook(codebook, paths["codebook"], markdown_path=paths["codebook_md"],
-                   title=f"Codebook for {paths['table'].name}")
+    write_codebook(
+        codebook,
+        paths["codebook"],
+        markdown_path=paths["codebook_md"],
+        title=f"Codebook for {paths['table'].name}",
+    )
     inputs = [{"role": "recipe", "path": recipe.source_file}] if recipe.source_file else []
     inputs.append({"role": "study_table", "path": plan.table.path})
     if recipe.units is not None and recipe.units.boundaries is not None:
@@ -1018,15 +1169,25 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
         for role, path in _layer_files(recipe, name):
             inputs.append({"role": role, "path": path})
     layers = {
-        name: {"crs": src.grid.crs.to_string(), "width": src.grid.width,
-               "height": src.grid.height, "transform": list(src.grid.transform)[:6],
-               "area_varies": bool(src.grid.area_varies)}
+        name: {
+            "crs": src.grid.crs.to_string(),
+            "width": src.grid.width,
+            "height": src.grid.height,
+            "transform": list(src.grid.transform)[:6],
+            "area_varies": bool(src.grid.area_varies),
+        }
         for name, src in plan.sources.items()
     }
     outputs = [paths["table"], paths["codebook"], paths["codebook_md"]]
-    write_manifest(paths["manifest"], recipe_fingerprint=recipe.fingerprint,
-                   recipe_file=recipe.source_file, inputs=inputs, outputs=outputs,
-                   layers=layers, started=started)
+    write_manifest(
+        paths["manifest"],
+        recipe_fingerprint=recipe.fingerprint,
+        recipe_file=recipe.source_file,
+        inputs=inputs,
+        outputs=outputs,
+        layers=layers,
+        started=started,
+    )
     return {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
 
 
@@ -1069,6 +1230,8 @@ def _gpkg_geometry(plan: Plan):
 
     x = pd.to_numeric(table.frame[p.x], errors="coerce").to_numpy(float)
     y = pd.to_numeric(table.frame[p.y], errors="coerce").to_numpy(float)
-    pts = [None if not (np.isfinite(a) and np.isfinite(b)) else shapely.Point(a, b)
-           for a, b in zip(x, y, strict=True)]
+    pts = [
+        None if not (np.isfinite(a) and np.isfinite(b)) else shapely.Point(a, b)
+        for a, b in zip(x, y, strict=True)
+    ]
     return pts, p.crs

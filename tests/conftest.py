@@ -79,9 +79,18 @@ def make_raster():
             transform = Affine(100.0, 0, 500_000.0, 0, -100.0, 8_700_000.0)
         data = np.asarray(data)
         h, w = data.shape
-        kwargs = dict(driver="GTiff", width=w, height=h, count=1, dtype=data.dtype,
-                      transform=transform, nodata=nodata, tiled=True,
-                      blockxsize=16, blockysize=16)
+        kwargs = dict(
+            driver="GTiff",
+            width=w,
+            height=h,
+            count=1,
+            dtype=data.dtype,
+            transform=transform,
+            nodata=nodata,
+            tiled=True,
+            blockxsize=16,
+            blockysize=16,
+        )
         if crs is not None:
             kwargs["crs"] = crs
         with rasterio.open(path, "w", **kwargs) as ds:

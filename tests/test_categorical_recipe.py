@@ -14,9 +14,18 @@ CLASSES = {1: "cropland", 2: "forest", 3: "grassland", 4: "built"}
 
 
 def _write(path, data, transform=T):
-    with rasterio.open(path, "w", driver="GTiff", width=data.shape[1], height=data.shape[0],
-                       count=1, dtype=data.dtype, crs="EPSG:4326", transform=transform,
-                       nodata=0) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype=data.dtype,
+        crs="EPSG:4326",
+        transform=transform,
+        nodata=0,
+    ) as ds:
         ds.write(data, 1)
 
 
@@ -35,15 +44,28 @@ def scene(tmp_path):
         "study": {"table": "sites.csv", "id": "site", "points": {"x": "lon", "y": "lat"}},
         "units": {"buffer_m": 1500},
         "layers": {
-            "cover_2015": {"file": "cover_2015.tif", "kind": "categorical", "classes": CLASSES,
-                           "groups": {"green": [2, 3]}},
-            "cover_2020": {"file": "cover_2020.tif", "kind": "categorical", "classes": CLASSES,
-                           "groups": {"green": [2, 3]}},
+            "cover_2015": {
+                "file": "cover_2015.tif",
+                "kind": "categorical",
+                "classes": CLASSES,
+                "groups": {"green": [2, 3]},
+            },
+            "cover_2020": {
+                "file": "cover_2020.tif",
+                "kind": "categorical",
+                "classes": CLASSES,
+                "groups": {"green": [2, 3]},
+            },
         },
         "covariates": [
             {"layer": "cover_2020", "stats": ["share", "dominant", "shannon", "valid_share"]},
-            {"layer": "cover_2020", "name": "change", "since": "cover_2015",
-             "stats": ["transition", "net_change"], "pairs": [["forest", "built"], ["any", "built"]]},
+            {
+                "layer": "cover_2020",
+                "name": "change",
+                "since": "cover_2015",
+                "stats": ["transition", "net_change"],
+                "pairs": [["forest", "built"], ["any", "built"]],
+            },
         ],
         "output": {"table": "out/sites.csv"},
     }
@@ -58,14 +80,21 @@ def test_categorical_recipe_columns_and_values(scene):
     for label in ("cropland", "forest", "grassland", "built", "green", "other"):
         assert f"cover_2020_share_{label}" in t.columns
     a = t.iloc[0]
-    total = sum(float(a[f"cover_2020_share_{lbl}"]) for lbl in ("cropland", "forest", "grassland", "built", "other"))
+    total = sum(
+        float(a[f"cover_2020_share_{lbl}"])
+        for lbl in ("cropland", "forest", "grassland", "built", "other")
+    )
     assert_allclose(total, 1.0, atol=1e-12)
     assert a["cover_2020_dominant"] in ("forest", "built")
     # B sits in the corner with the unknown code 7
     assert float(t.iloc[1]["cover_2020_share_other"]) > 0
     # change: net change of built equals forest -> built (nothing else became built)
-    assert_allclose(float(a["change_net_change_built"]), float(a["change_transition_forest_to_built"]))
-    assert_allclose(float(a["change_transition_any_to_built"]), float(a["change_transition_forest_to_built"]))
+    assert_allclose(
+        float(a["change_net_change_built"]), float(a["change_transition_forest_to_built"])
+    )
+    assert_allclose(
+        float(a["change_transition_any_to_built"]), float(a["change_transition_forest_to_built"])
+    )
     assert float(a["change_net_change_forest"]) < 0
     rows = {r["column"]: r for r in result.codebook}
     assert "Class table: 1 = cropland" in rows["cover_2020_share_forest"]["definition"]
@@ -80,7 +109,11 @@ def _run(folder, recipe):
 
 def test_transition_on_different_grids_is_a_check_problem(scene):
     folder, recipe = scene
-    _write(folder / "cover_2015.tif", np.full((50, 50), 2, np.uint8), Affine(0.002, 0, 10, 0, -0.002, 1.0))
+    _write(
+        folder / "cover_2015.tif",
+        np.full((50, 50), 2, np.uint8),
+        Affine(0.002, 0, 10, 0, -0.002, 1.0),
+    )
     from covextract.recipe import load_recipe
 
     with pytest.warns(UnknownClassWarning):  # the later layer still holds code 7
@@ -88,12 +121,21 @@ def test_transition_on_different_grids_is_a_check_problem(scene):
     assert any("not on the same grid" in str(p) and "since" in str(p) for p in problems)
 
 
-@pytest.mark.parametrize("change,why", [
-    ({"stats": ["transition"], "pairs": [["forest", "built"]]}, "compares with an earlier layer"),
-    ({"stats": ["net_change"], "since": "nope"}, "unknown layer 'nope'"),
-    ({"stats": ["transition"], "since": "cover_2015"}, "transition needs pairs"),
-    ({"stats": ["transition"], "since": "cover_2015", "pairs": [["forrest", "built"]]}, "'forrest' is not a class"),
-])
+@pytest.mark.parametrize(
+    "change,why",
+    [
+        (
+            {"stats": ["transition"], "pairs": [["forest", "built"]]},
+            "compares with an earlier layer",
+        ),
+        ({"stats": ["net_change"], "since": "nope"}, "unknown layer 'nope'"),
+        ({"stats": ["transition"], "since": "cover_2015"}, "transition needs pairs"),
+        (
+            {"stats": ["transition"], "since": "cover_2015", "pairs": [["forrest", "built"]]},
+            "'forrest' is not a class",
+        ),
+    ],
+)
 def test_bad_change_covariates_are_explained(scene, change, why):
     from covextract.errors import RecipeError
     from covextract.recipe import load_recipe
@@ -108,6 +150,8 @@ def test_check_reports_codes_missing_from_the_class_table(scene):
     from covextract.recipe import load_recipe
 
     folder, recipe = scene
-    with pytest.warns(UnknownClassWarning, match=r"'cover_2020' holds codes not in its class table \(7\)"):
+    with pytest.warns(
+        UnknownClassWarning, match=r"'cover_2020' holds codes not in its class table \(7\)"
+    ):
         problems = check_recipe(load_recipe(recipe, base_dir=folder))
     assert problems == []

@@ -14,9 +14,18 @@ T = Affine(100.0, 0, 500_000.0, 0, -100.0, 9_000_000.0)
 
 
 def _write(path, data, transform=T, nodata=None):
-    with rasterio.open(path, "w", driver="GTiff", width=data.shape[1], height=data.shape[0],
-                       count=1, dtype=data.dtype, crs="EPSG:32733", transform=transform,
-                       nodata=nodata) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype=data.dtype,
+        crs="EPSG:32733",
+        transform=transform,
+        nodata=nodata,
+    ) as ds:
         ds.write(data, 1)
 
 
@@ -47,20 +56,38 @@ def folder(tmp_path):
 
 
 def _recipe(layers, covariates):
-    return {"version": 1, "study": {"table": "area.geojson", "id": "uid"}, "layers": layers,
-            "covariates": covariates, "output": {"table": "out/t.csv"}}
+    return {
+        "version": 1,
+        "study": {"table": "area.geojson", "id": "uid"},
+        "layers": layers,
+        "covariates": covariates,
+        "output": {"table": "out/t.csv"},
+    }
 
 
 def test_ndvi_from_bands_matches_the_formula(folder):
     path, red, nir, _ = folder
     recipe = _recipe(
-        {"veg": {"bands": {"red": {"file": "red.tif", "scale": 1e-4, "nodata": 0},
-                           "nir": {"file": "nir.tif", "scale": 1e-4}}, "index": "ndvi"},
-         "veg2": {"bands": {"red": {"file": "red.tif", "scale": 1e-4, "nodata": 0},
-                            "nir": {"file": "nir.tif", "scale": 1e-4}},
-                  "expression": "(nir - red) / (nir + red)"}},
-        [{"layer": "veg", "stats": ["mean", "count"], "area_weighting": "off"},
-         {"layer": "veg2", "stats": ["mean"], "area_weighting": "off"}],
+        {
+            "veg": {
+                "bands": {
+                    "red": {"file": "red.tif", "scale": 1e-4, "nodata": 0},
+                    "nir": {"file": "nir.tif", "scale": 1e-4},
+                },
+                "index": "ndvi",
+            },
+            "veg2": {
+                "bands": {
+                    "red": {"file": "red.tif", "scale": 1e-4, "nodata": 0},
+                    "nir": {"file": "nir.tif", "scale": 1e-4},
+                },
+                "expression": "(nir - red) / (nir + red)",
+            },
+        },
+        [
+            {"layer": "veg", "stats": ["mean", "count"], "area_weighting": "off"},
+            {"layer": "veg2", "stats": ["mean"], "area_weighting": "off"},
+        ],
     )
     result = run(load_recipe(recipe, base_dir=path), write=False)
     ok = red != 0
@@ -68,7 +95,9 @@ def test_ndvi_from_bands_matches_the_formula(folder):
     # Rouse et al. (1974): NDVI = (NIR - Red) / (NIR + Red)
     assert_allclose(float(result.table["veg_mean"][0]), np.mean((n - r) / (n + r)), rtol=1e-12)
     assert int(result.table["veg_count"][0]) == ok.sum()
-    assert_allclose(float(result.table["veg2_mean"][0]), float(result.table["veg_mean"][0]), rtol=1e-15)
+    assert_allclose(
+        float(result.table["veg2_mean"][0]), float(result.table["veg_mean"][0]), rtol=1e-15
+    )
     rows = {r["column"]: r for r in result.codebook}
     assert "division by zero gives nodata" in rows["veg_mean"]["nodata_handling"]
 
@@ -77,13 +106,22 @@ def test_population_weighted_mean_equals_hand_computation(folder):
     path, _, _, temp = folder
     recipe = _recipe(
         {"temp": {"file": "temp.tif"}, "pop": {"file": "pop.tif"}},
-        [{"layer": "temp", "stats": ["mean", "valid_share"], "weight_by": "pop", "name": "temp_popw"},
-         {"layer": "temp", "stats": ["mean"]}],
+        [
+            {
+                "layer": "temp",
+                "stats": ["mean", "valid_share"],
+                "weight_by": "pop",
+                "name": "temp_popw",
+            },
+            {"layer": "temp", "stats": ["mean"]},
+        ],
     )
     result = run(load_recipe(recipe, base_dir=path), write=False)
     # weight = coverage x area x population density; the UTM pixels have one area, so the
     # population-weighted mean is the mean of the east half (hand computation)
-    assert_allclose(float(result.table["temp_popw_mean"][0]), temp[:, 20:].mean(dtype=np.float64), rtol=1e-9)
+    assert_allclose(
+        float(result.table["temp_popw_mean"][0]), temp[:, 20:].mean(dtype=np.float64), rtol=1e-9
+    )
     assert float(result.table["temp_popw_mean"][0]) > float(result.table["temp_mean"][0])
     # the pixel with a missing weight is excluded and reported in the valid share
     assert_allclose(float(result.table["temp_popw_valid_share"][0]), 1 - 1 / 1600, rtol=1e-12)
@@ -91,8 +129,10 @@ def test_population_weighted_mean_equals_hand_computation(folder):
 
 def test_ceiling_clips_saturated_lights(folder):
     path, *_ = folder
-    recipe = _recipe({"lights": {"file": "lights.tif", "ceiling": 63.0}},
-                     [{"layer": "lights", "stats": ["max", "mean"]}])
+    recipe = _recipe(
+        {"lights": {"file": "lights.tif", "ceiling": 63.0}},
+        [{"layer": "lights", "stats": ["max", "mean"]}],
+    )
     result = run(load_recipe(recipe, base_dir=path), write=False)
     assert float(result.table["lights_max"][0]) == 63.0
 
@@ -100,18 +140,53 @@ def test_ceiling_clips_saturated_lights(folder):
 def test_derived_layer_problems_are_reported(folder):
     path, *_ = folder
     with pytest.raises(RecipeError, match="'swir' is not a band"):
-        load_recipe(_recipe({"veg": {"bands": {"red": {"file": "red.tif"}, "nir": {"file": "nir.tif"}},
-                                     "expression": "(swir - red)"}},
-                            [{"layer": "veg", "stats": ["mean"]}]), base_dir=path)
+        load_recipe(
+            _recipe(
+                {
+                    "veg": {
+                        "bands": {"red": {"file": "red.tif"}, "nir": {"file": "nir.tif"}},
+                        "expression": "(swir - red)",
+                    }
+                },
+                [{"layer": "veg", "stats": ["mean"]}],
+            ),
+            base_dir=path,
+        )
     with pytest.raises(RecipeError, match="index ndvi needs bands named nir, red; missing: red"):
-        load_recipe(_recipe({"veg": {"bands": {"nir": {"file": "nir.tif"}}, "index": "ndvi"}},
-                            [{"layer": "veg", "stats": ["mean"]}]), base_dir=path)
-    _write(path / "coarse.tif", np.ones((20, 20), np.float32), Affine(200.0, 0, 500_000, 0, -200.0, 9_000_000))
-    problems = check_recipe(load_recipe(_recipe(
-        {"temp": {"file": "temp.tif"}, "pop": {"file": "coarse.tif"}},
-        [{"layer": "temp", "stats": ["mean"], "weight_by": "pop"}]), base_dir=path))
+        load_recipe(
+            _recipe(
+                {"veg": {"bands": {"nir": {"file": "nir.tif"}}, "index": "ndvi"}},
+                [{"layer": "veg", "stats": ["mean"]}],
+            ),
+            base_dir=path,
+        )
+    _write(
+        path / "coarse.tif",
+        np.ones((20, 20), np.float32),
+        Affine(200.0, 0, 500_000, 0, -200.0, 9_000_000),
+    )
+    problems = check_recipe(
+        load_recipe(
+            _recipe(
+                {"temp": {"file": "temp.tif"}, "pop": {"file": "coarse.tif"}},
+                [{"layer": "temp", "stats": ["mean"], "weight_by": "pop"}],
+            ),
+            base_dir=path,
+        )
+    )
     assert any("not on the same grid" in str(p) and "weight_by" in str(p) for p in problems)
-    problems = check_recipe(load_recipe(_recipe(
-        {"veg": {"bands": {"red": {"file": "red.tif"}, "nir": {"file": "coarse.tif"}}, "index": "ndvi"}},
-        [{"layer": "veg", "stats": ["mean"]}]), base_dir=path))
+    problems = check_recipe(
+        load_recipe(
+            _recipe(
+                {
+                    "veg": {
+                        "bands": {"red": {"file": "red.tif"}, "nir": {"file": "coarse.tif"}},
+                        "index": "ndvi",
+                    }
+                },
+                [{"layer": "veg", "stats": ["mean"]}],
+            ),
+            base_dir=path,
+        )
+    )
     assert any("not on the same grid" in str(p) for p in problems)

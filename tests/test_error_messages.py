@@ -63,8 +63,9 @@ class Scenario:
         path.write_text(text, encoding="utf-8")
         return path
 
-    def table(self, name: str, rows: list[str],
-              header: str = "village_id,lon,lat,visit_date") -> str:
+    def table(
+        self, name: str, rows: list[str], header: str = "village_id,lon,lat,visit_date"
+    ) -> str:
         (self.folder / name).write_text(header + "\n" + "\n".join(rows) + "\n", encoding="utf-8")
         return name
 
@@ -80,8 +81,7 @@ class Scenario:
 
     def raster(self, name: str, **kw) -> Path:
         data = np.arange(16, dtype=np.int16).reshape(4, 4)
-        return self._raster(self.folder / name, data,
-                            Affine(0.01, 0, 4.6, 0, -0.01, -11.6), **kw)
+        return self._raster(self.folder / name, data, Affine(0.01, 0, 4.6, 0, -0.01, -11.6), **kw)
 
 
 @pytest.fixture
@@ -149,93 +149,140 @@ def _output_over_input(s: Scenario) -> Path:
 
 
 def _collides_with_table(s: Scenario) -> Path:
-    return s.with_table("with_ndvi.csv", ["001,4.631062,-11.696279,2021-01-14,0.5"],
-                        header="village_id,lon,lat,visit_date,ndvi_mean")
+    return s.with_table(
+        "with_ndvi.csv",
+        ["001,4.631062,-11.696279,2021-01-14,0.5"],
+        header="village_id,lon,lat,visit_date,ndvi_mean",
+    )
 
 
 def _two_covariates_collide(s: Scenario) -> Path:
-    return s.write(s.recipe(covariates=[
-        {"layer": "ndvi", "stats": ["mean"]},
-        {"layer": "ndvi", "stats": ["mean", "std"], "buffer_m": 5000},
-    ]))
+    return s.write(
+        s.recipe(
+            covariates=[
+                {"layer": "ndvi", "stats": ["mean"]},
+                {"layer": "ndvi", "stats": ["mean", "std"], "buffer_m": 5000},
+            ]
+        )
+    )
 
 
 CASES = {
     "recipe file missing": Case(
-        lambda s: s.folder / "no_such_recipe.yaml", InputFileError,
+        lambda s: s.folder / "no_such_recipe.yaml",
+        InputFileError,
         ["recipe file not found", "{folder}/no_such_recipe.yaml", "check the path"],
     ),
     "YAML syntax error": Case(
-        _yaml_syntax, RecipeError,
+        _yaml_syntax,
+        RecipeError,
         ["not valid YAML", "mapping values are not allowed here"],
         line_snippet="scale: 0.0001: 2",
     ),
     "unknown key": Case(
-        _unknown_key, RecipeError, ["unknown key 'scal'", "did you mean 'scale'?"],
-        key="layers.ndvi.scal", line_snippet="scal: 0.0001",
+        _unknown_key,
+        RecipeError,
+        ["unknown key 'scal'", "did you mean 'scale'?"],
+        key="layers.ndvi.scal",
+        line_snippet="scal: 0.0001",
     ),
     "wrong type": Case(
-        _wrong_type, RecipeError, ["expected a whole number, got '1' (text)"],
-        key="layers.ndvi.band", line_snippet="band: '1'",
+        _wrong_type,
+        RecipeError,
+        ["expected a whole number, got '1' (text)"],
+        key="layers.ndvi.band",
+        line_snippet="band: '1'",
     ),
     "raster file missing": Case(
-        lambda s: s.with_layer_file("ndvi_2020.tif"), InputFileError,
+        lambda s: s.with_layer_file("ndvi_2020.tif"),
+        InputFileError,
         ["raster of layer 'ndvi' not found", "{folder}/ndvi_2020.tif", "relative to the recipe"],
-        key="layers.ndvi.file", line_snippet="file: ndvi_2020.tif",
+        key="layers.ndvi.file",
+        line_snippet="file: ndvi_2020.tif",
     ),
     "raster unreadable": Case(
-        _unreadable, InputFileError,
+        _unreadable,
+        InputFileError,
         ["raster of layer 'ndvi'", "{folder}/broken.tif", "cannot be opened as a raster"],
-        key="layers.ndvi.file", line_snippet="file: broken.tif",
+        key="layers.ndvi.file",
+        line_snippet="file: broken.tif",
     ),
     "raster without CRS": Case(
-        _no_crs, RasterError,
+        _no_crs,
+        RasterError,
         ["{folder}/no_crs.tif has no CRS", 'crs: "EPSG:4326"'],
-        key="layers.ndvi.file", line_snippet="file: no_crs.tif",
+        key="layers.ndvi.file",
+        line_snippet="file: no_crs.tif",
     ),
     "coordinate columns missing": Case(
-        _no_coordinate_columns, TableError,
+        _no_coordinate_columns,
+        TableError,
         ["coordinate column 'long' (study.points.x) is not in villages.csv", "Did you mean 'lon'?"],
     ),
     "coordinates out of range": Case(
-        lambda s: s.with_table("far.csv", ["001,4.631062,-11.696279,2021-01-14",
-                                           "002,200.5,-11.7,2021-01-14"]),
+        lambda s: s.with_table(
+            "far.csv", ["001,4.631062,-11.696279,2021-01-14", "002,200.5,-11.7,2021-01-14"]
+        ),
         TableError,
-        ["outside the range", "longitude -180..180, latitude -90..90", "row 2 (id '002')",
-         "(200.5, -11.7)", "far.csv"],
+        [
+            "outside the range",
+            "longitude -180..180, latitude -90..90",
+            "row 2 (id '002')",
+            "(200.5, -11.7)",
+            "far.csv",
+        ],
     ),
     "coordinates swapped": Case(
-        lambda s: s.with_table("swapped.csv", ["001,4.631062,-11.696279,2021-01-14",
-                                               "002,-8.2,120.5,2021-01-14"]),
+        lambda s: s.with_table(
+            "swapped.csv", ["001,4.631062,-11.696279,2021-01-14", "002,-8.2,120.5,2021-01-14"]
+        ),
         TableError,
-        ["outside the range", "row 2 (id '002')", "x and y look swapped",
-         "swap study.points.x and study.points.y"],
+        [
+            "outside the range",
+            "row 2 (id '002')",
+            "x and y look swapped",
+            "swap study.points.x and study.points.y",
+        ],
     ),
     "duplicate ids": Case(
-        lambda s: s.with_table("dups.csv", ["001,4.631062,-11.696279,2021-01-14",
-                                            "002,5.316006,-12.410372,2021-01-14",
-                                            "001,5.188764,-12.296539,2021-01-14"]),
-        TableError, ["occur more than once", "'001' (rows 1, 3)", "dups.csv", "unique"],
+        lambda s: s.with_table(
+            "dups.csv",
+            [
+                "001,4.631062,-11.696279,2021-01-14",
+                "002,5.316006,-12.410372,2021-01-14",
+                "001,5.188764,-12.296539,2021-01-14",
+            ],
+        ),
+        TableError,
+        ["occur more than once", "'001' (rows 1, 3)", "dups.csv", "unique"],
     ),
     "missing ids": Case(
-        lambda s: s.with_table("gaps.csv", ["001,4.631062,-11.696279,2021-01-14",
-                                            ",5.316006,-12.410372,2021-01-14"]),
-        TableError, ["have no id in column 'village_id'", "row 2", "gaps.csv"],
+        lambda s: s.with_table(
+            "gaps.csv", ["001,4.631062,-11.696279,2021-01-14", ",5.316006,-12.410372,2021-01-14"]
+        ),
+        TableError,
+        ["have no id in column 'village_id'", "row 2", "gaps.csv"],
     ),
     "output over input": Case(
-        _output_over_input, OutputError,
+        _output_over_input,
+        OutputError,
         ["output.table", "never writes over its input"],
-        key="output.table", line_snippet="table: ../demo/villages.csv",
+        key="output.table",
+        line_snippet="table: ../demo/villages.csv",
     ),
     "covariate column in the table": Case(
-        _collides_with_table, ColumnCollisionError,
+        _collides_with_table,
+        ColumnCollisionError,
         ["would write column 'ndvi_mean', which the study table already has", "Add name:"],
         key="covariates[0]",
     ),
     "two covariates collide": Case(
-        _two_covariates_collide, ColumnCollisionError,
-        ["covariates 1 and 2 would both write column 'ndvi_mean'",
-         "Add a distinct name: to covariate 2"],
+        _two_covariates_collide,
+        ColumnCollisionError,
+        [
+            "covariates 1 and 2 would both write column 'ndvi_mean'",
+            "Add a distinct name: to covariate 2",
+        ],
         key="covariates[1]",
     ),
 }
@@ -316,8 +363,7 @@ def test_check_lists_every_problem_not_only_the_first(scenario):
     path = scenario.write(data)
     problems = check_recipe(path)
     found = {p.key: str(p) for p in problems}
-    assert set(found) == {"output.drop", "layers.ndvi.file", "layers.lights.file",
-                          "covariates[2]"}
+    assert set(found) == {"output.drop", "layers.ndvi.file", "layers.lights.file", "covariates[2]"}
     assert "column 'elevation' is not in the study table" in found["output.drop"]
     assert "not found" in found["layers.ndvi.file"]
     assert "has no CRS" in found["layers.lights.file"]
@@ -368,13 +414,16 @@ def read_out(path) -> pd.DataFrame:
 
 
 def test_points_at_zero_or_sentinel_warn_and_get_a_qa_code(scenario):
-    path = scenario.with_table("suspect.csv", [
-        "001,4.631062,-11.696279,2021-01-14",
-        "002,0,0,2021-01-14",
-        "003,5.1,999,2021-01-14",
-        "004,-999,-999,2021-01-14",
-        "005,,,2021-01-14",
-    ])
+    path = scenario.with_table(
+        "suspect.csv",
+        [
+            "001,4.631062,-11.696279,2021-01-14",
+            "002,0,0,2021-01-14",
+            "003,5.1,999,2021-01-14",
+            "004,-999,-999,2021-01-14",
+            "005,,,2021-01-14",
+        ],
+    )
     with pytest.warns(SuspectLocationWarning) as record:
         result = run(path)
     assert len(record) == 1
@@ -396,10 +445,13 @@ def test_points_at_zero_or_sentinel_warn_and_get_a_qa_code(scenario):
 def test_a_unit_outside_a_layer_warns_and_gets_missing_values(scenario):
     # Village 002 lies 15 degrees east of every demo raster.
     data = scenario.recipe()
-    data["study"]["table"] = scenario.table("outside.csv", [
-        "001,4.631062,-11.696279,2021-01-14",
-        "002,20.0,-12.0,2021-01-14",
-    ])
+    data["study"]["table"] = scenario.table(
+        "outside.csv",
+        [
+            "001,4.631062,-11.696279,2021-01-14",
+            "002,20.0,-12.0,2021-01-14",
+        ],
+    )
     path = scenario.write(data)
     assert check_recipe(path) == []  # not an error: the other units are fine
     with pytest.warns(UnitOutsideLayerWarning) as record:
@@ -436,8 +488,14 @@ def test_empty_and_invalid_boundaries_are_repaired_or_flagged(scenario):
     repaired_id, empty_id = areas["village_id"].iloc[0], areas["village_id"].iloc[1]
     c = areas.geometry.iloc[0].centroid
     # A bow-tie: its two triangles touch at the centre, so make_valid keeps both.
-    bow = shapely.Polygon([(c.x - 0.01, c.y - 0.01), (c.x + 0.01, c.y + 0.01),
-                           (c.x + 0.01, c.y - 0.01), (c.x - 0.01, c.y + 0.01)])
+    bow = shapely.Polygon(
+        [
+            (c.x - 0.01, c.y - 0.01),
+            (c.x + 0.01, c.y + 0.01),
+            (c.x + 0.01, c.y - 0.01),
+            (c.x - 0.01, c.y + 0.01),
+        ]
+    )
     assert not bow.is_valid
     areas.loc[0, "geometry"] = bow
     areas.loc[1, "geometry"] = shapely.Polygon()

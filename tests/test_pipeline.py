@@ -26,8 +26,9 @@ def read_text_csv(path) -> pd.DataFrame:
 def boundary_recipe(demo_recipe_data, stats, pixels="overlap") -> dict:
     data = copy.deepcopy(demo_recipe_data)
     del data["study"]["points"]
-    data["units"] = {"boundaries": {"file": "village_areas.gpkg", "layer": "village_areas",
-                                    "id": "village_id"}}
+    data["units"] = {
+        "boundaries": {"file": "village_areas.gpkg", "layer": "village_areas", "id": "village_id"}
+    }
     data["layers"] = {"ndvi": data["layers"]["ndvi"]}
     data["covariates"] = [{"layer": "ndvi", "stats": stats, "pixels": pixels}]
     data["output"] = {"table": "out/boundaries.csv"}
@@ -64,32 +65,48 @@ def test_zonal_statistics_equals_the_recipe_for_the_same_units(
 ):
     areas = gpd.read_file(demo_dir / "village_areas.gpkg")
     direct = covextract.zonal_statistics(
-        demo_dir / "ndvi_2021.tif", areas, NDVI_STATS, id_column="village_id",
-        pixels="overlap", scale=0.0001, nodata=-3000,
+        demo_dir / "ndvi_2021.tif",
+        areas,
+        NDVI_STATS,
+        id_column="village_id",
+        pixels="overlap",
+        scale=0.0001,
+        nodata=-3000,
     )
     assert direct.index.name == "village_id"
     assert list(direct.index) == list(areas["village_id"])  # the GeoDataFrame's order
     assert list(direct.columns) == NDVI_STATS
-    result = run(write_recipe(demo_dir, boundary_recipe(demo_recipe_data, NDVI_STATS)),
-                 write=False)
+    result = run(write_recipe(demo_dir, boundary_recipe(demo_recipe_data, NDVI_STATS)), write=False)
     via_recipe = result.table.set_index("village_id")
     # The boundary file is in another order than the study table: compare by id.
     assert list(via_recipe.index) != list(direct.index)
     for stat in NDVI_STATS:
-        assert_allclose(direct.loc[via_recipe.index, stat].to_numpy(float),
-                        via_recipe[f"ndvi_{stat}"].to_numpy(float), rtol=1e-12, atol=0)
+        assert_allclose(
+            direct.loc[via_recipe.index, stat].to_numpy(float),
+            via_recipe[f"ndvi_{stat}"].to_numpy(float),
+            rtol=1e-12,
+            atol=0,
+        )
 
 
 def test_zonal_statistics_reprojects_units_and_applies_scale(demo_dir):
     areas = gpd.read_file(demo_dir / "village_areas.gpkg")
     in_degrees = covextract.zonal_statistics(
-        demo_dir / "ndvi_2021.tif", areas, ["mean", "area_km2"], id_column="village_id",
-        scale=0.0001, nodata=-3000,
+        demo_dir / "ndvi_2021.tif",
+        areas,
+        ["mean", "area_km2"],
+        id_column="village_id",
+        scale=0.0001,
+        nodata=-3000,
     )
     # The same polygons given in UTM (EPSG:32731) come back to the raster's lat/lon grid.
     in_metres = covextract.zonal_statistics(
-        demo_dir / "ndvi_2021.tif", areas.to_crs("EPSG:32731"), ["mean", "area_km2"],
-        id_column="village_id", scale=0.0001, nodata=-3000,
+        demo_dir / "ndvi_2021.tif",
+        areas.to_crs("EPSG:32731"),
+        ["mean", "area_km2"],
+        id_column="village_id",
+        scale=0.0001,
+        nodata=-3000,
     )
     assert_allclose(in_metres["mean"], in_degrees["mean"], rtol=1e-6)
     assert_allclose(in_metres["area_km2"], in_degrees["area_km2"], rtol=1e-5)
@@ -100,15 +117,22 @@ def test_zonal_statistics_reprojects_units_and_applies_scale(demo_dir):
     geod = Geod(ellps="WGS84")
     true_km2 = np.array([abs(geod.geometry_area_perimeter(g)[0]) / 1e6 for g in areas.geometry])
     assert_allclose(in_degrees["area_km2"], true_km2, rtol=1e-4)
-    raw = covextract.zonal_statistics(demo_dir / "ndvi_2021.tif", areas, ["mean"],
-                                      id_column="village_id", scale=1.0, nodata=-3000)
+    raw = covextract.zonal_statistics(
+        demo_dir / "ndvi_2021.tif", areas, ["mean"], id_column="village_id", scale=1.0, nodata=-3000
+    )
     assert_allclose(raw["mean"] * 0.0001, in_degrees["mean"], rtol=1e-12)
 
 
 def test_boundaries_give_other_values_than_buffers(demo_dir, demo_recipe_data, write_recipe):
     buffers = run(demo_dir / "recipe.yaml", write=False).table.set_index("village_id")
-    polygons = run(write_recipe(demo_dir, boundary_recipe(demo_recipe_data, ["mean", "area_km2"])),
-                   write=False).table.set_index("village_id").loc[buffers.index]
+    polygons = (
+        run(
+            write_recipe(demo_dir, boundary_recipe(demo_recipe_data, ["mean", "area_km2"])),
+            write=False,
+        )
+        .table.set_index("village_id")
+        .loc[buffers.index]
+    )
     diff = np.abs(polygons["ndvi_mean"].to_numpy(float) - buffers["ndvi_mean"].to_numpy(float))
     assert (diff > 1e-4).sum() >= 35
     # A 2 km buffer covers pi * 4 km2 = 12.6 km2; the village polygons are 1-3 km across.
@@ -140,8 +164,9 @@ def test_per_covariate_buffers_area_and_nested_counts(demo_dir, repo_root, write
 
 # ---------------------------------------------------------------- point values
 @pytest.mark.parametrize("method,rtol", [("nearest", 1e-15), ("bilinear", 1e-6)])
-def test_point_values_equal_rasterstats_point_query(demo_dir, demo_recipe_data, write_recipe,
-                                                    method, rtol):
+def test_point_values_equal_rasterstats_point_query(
+    demo_dir, demo_recipe_data, write_recipe, method, rtol
+):
     # Reference: rasterstats.point_query on the demo NDVI raster (stored values; the
     # recipe's scale 0.0001 applied here). Nearest agrees to the last bit of float64
     # (the engine takes a weighted mean of one pixel); bilinear weights are stored as
@@ -156,8 +181,10 @@ def test_point_values_equal_rasterstats_point_query(demo_dir, demo_recipe_data, 
     data["output"] = {"table": "out/points.csv"}
     result = run(write_recipe(demo_dir, data), write=False)
     villages = read_text_csv(demo_dir / "villages.csv")
-    points = [shapely.Point(float(x), float(y)) for x, y in zip(villages["lon"], villages["lat"],
-                                                                 strict=True)]
+    points = [
+        shapely.Point(float(x), float(y))
+        for x, y in zip(villages["lon"], villages["lat"], strict=True)
+    ]
     reference = point_query(points, str(demo_dir / "ndvi_2021.tif"), interpolate=method)
     ref = np.array([np.nan if v is None else v * 0.0001 for v in reference])
     ours = result.table["ndvi_value"].to_numpy(float)
@@ -174,8 +201,14 @@ def test_zonal_statistics_for_points(demo_dir, demo_recipe_data, write_recipe):
         geometry=gpd.points_from_xy(villages["lon"].astype(float), villages["lat"].astype(float)),
         crs="EPSG:4326",
     )
-    direct = covextract.zonal_statistics(demo_dir / "night_lights_2021.tif", gdf, ["value"],
-                                         id_column="village_id", pixels="nearest", with_qa=True)
+    direct = covextract.zonal_statistics(
+        demo_dir / "night_lights_2021.tif",
+        gdf,
+        ["value"],
+        id_column="village_id",
+        pixels="nearest",
+        with_qa=True,
+    )
     data = copy.deepcopy(demo_recipe_data)
     data["units"] = {"at_point": "nearest"}
     data["layers"] = {"lights": data["layers"]["lights"]}

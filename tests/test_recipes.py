@@ -20,57 +20,141 @@ REPO = Path(__file__).resolve().parents[1]
 RECIPES = sorted((REPO / "recipes").glob("*.yaml")) + [demo_data_folder() / "recipe.yaml"]
 
 VILLAGE_COLUMNS = [
-    "village_id", "village_name", "settlement", "buffer_radius_m", "visit_date",
-    "households", "notes",
+    "village_id",
+    "village_name",
+    "settlement",
+    "buffer_radius_m",
+    "visit_date",
+    "households",
+    "notes",
 ]
 # the invented land-cover legend of the demo, in code order
 CLASSES = ("cropland", "orchard", "forest", "scrub", "grassland", "built", "water")
-DEMO_NEW = [
-    "ndvi_mean", "ndvi_std", "ndvi_q90", "ndvi_valid_share", "ndvi_qa",
-    "surface_temp_mean", "surface_temp_min", "surface_temp_max", "surface_temp_qa",
-    "lights_density_total", "lights_mean", "lights_area_above", "lights_qa",
-] + [f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")] + [
-    "cover_2021_dominant", "cover_2021_shannon", "cover_2021_qa",
-    "cover_change_transition_forest_to_cropland", "cover_change_transition_any_to_built",
-] + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa"] + [
-    "veg_mean", "veg_valid_share", "veg_qa", "veg_popw_mean", "veg_popw_qa",
-    "pop_alloc_allocated", "pop_alloc_qa", "hh_fit_predicted", "hh_fit_lower", "hh_fit_upper",
-    "hh_fit_qa",
-]
+DEMO_NEW = (
+    [
+        "ndvi_mean",
+        "ndvi_std",
+        "ndvi_q90",
+        "ndvi_valid_share",
+        "ndvi_qa",
+        "surface_temp_mean",
+        "surface_temp_min",
+        "surface_temp_max",
+        "surface_temp_qa",
+        "lights_density_total",
+        "lights_mean",
+        "lights_area_above",
+        "lights_qa",
+    ]
+    + [f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")]
+    + [
+        "cover_2021_dominant",
+        "cover_2021_shannon",
+        "cover_2021_qa",
+        "cover_change_transition_forest_to_cropland",
+        "cover_change_transition_any_to_built",
+    ]
+    + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+    + ["cover_change_qa"]
+    + [
+        "veg_mean",
+        "veg_valid_share",
+        "veg_qa",
+        "veg_popw_mean",
+        "veg_popw_qa",
+        "pop_alloc_allocated",
+        "pop_alloc_qa",
+        "hh_fit_predicted",
+        "hh_fit_lower",
+        "hh_fit_upper",
+        "hh_fit_qa",
+    ]
+)
 # The columns each recipe documents (in its comments and in the README), in order:
 # the study table's columns minus output.drop, then <layer or name>_<stat> and
 # <layer or name>_qa per covariate.
 EXPECTED = {
     "demo.yaml": ("villages.csv", VILLAGE_COLUMNS + DEMO_NEW),
     "recipe.yaml": ("villages.csv", VILLAGE_COLUMNS + DEMO_NEW),
-    "point_values.yaml": ("villages.csv", VILLAGE_COLUMNS + [
-        "ndvi_value", "ndvi_qa", "surface_temp_value", "surface_temp_qa",
-        "lights_value", "lights_qa",
-    ]),
-    "sensitivity_buffers.yaml": ("villages.csv", VILLAGE_COLUMNS + [
-        f"ndvi_{r}km_{s}" for r in (1, 2, 5) for s in ("mean", "std", "valid_share", "qa")
-    ]),
-    "survey_clusters.yaml": ("survey_clusters.csv", [
-        "cluster_id", "residence", "radius_m", "interview_date",
-        "ndvi_mean", "ndvi_std", "ndvi_valid_share", "ndvi_qa",
-        "surface_temp_mean", "surface_temp_qa",
-        "lights_density_total", "lights_share_above", "lights_qa",
-    ]),
-    "land_cover_change.yaml": ("villages.csv", VILLAGE_COLUMNS + [
-        f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")
-    ] + ["cover_2021_dominant", "cover_2021_shannon", "cover_2021_valid_share", "cover_2021_qa",
-         "cover_change_transition_forest_to_cropland", "cover_change_transition_forest_to_built",
-         "cover_change_transition_any_to_built"]
-      + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)] + ["cover_change_qa",
-         "cover_change_5km_transition_forest_to_cropland", "cover_change_5km_transition_any_to_built"]
-      + [f"cover_change_5km_net_change_{c}" for c in CLASSES + ("tree_cover",)]
-      + ["cover_change_5km_qa"]),
-    "village_boundaries.yaml": ("villages.csv", VILLAGE_COLUMNS + [
-        "ndvi_mean", "ndvi_median", "ndvi_q10", "ndvi_q90", "ndvi_valid_share", "ndvi_qa",
-        "ndvi_center_mean", "ndvi_center_valid_share", "ndvi_center_qa",
-        "surface_temp_mean", "surface_temp_max", "surface_temp_qa",
-        "lights_area_km2", "lights_density_total", "lights_share_above", "lights_qa",
-    ]),
+    "point_values.yaml": (
+        "villages.csv",
+        VILLAGE_COLUMNS
+        + [
+            "ndvi_value",
+            "ndvi_qa",
+            "surface_temp_value",
+            "surface_temp_qa",
+            "lights_value",
+            "lights_qa",
+        ],
+    ),
+    "sensitivity_buffers.yaml": (
+        "villages.csv",
+        VILLAGE_COLUMNS
+        + [f"ndvi_{r}km_{s}" for r in (1, 2, 5) for s in ("mean", "std", "valid_share", "qa")],
+    ),
+    "survey_clusters.yaml": (
+        "survey_clusters.csv",
+        [
+            "cluster_id",
+            "residence",
+            "radius_m",
+            "interview_date",
+            "ndvi_mean",
+            "ndvi_std",
+            "ndvi_valid_share",
+            "ndvi_qa",
+            "surface_temp_mean",
+            "surface_temp_qa",
+            "lights_density_total",
+            "lights_share_above",
+            "lights_qa",
+        ],
+    ),
+    "land_cover_change.yaml": (
+        "villages.csv",
+        VILLAGE_COLUMNS
+        + [f"cover_2021_share_{c}" for c in CLASSES + ("tree_cover", "other")]
+        + [
+            "cover_2021_dominant",
+            "cover_2021_shannon",
+            "cover_2021_valid_share",
+            "cover_2021_qa",
+            "cover_change_transition_forest_to_cropland",
+            "cover_change_transition_forest_to_built",
+            "cover_change_transition_any_to_built",
+        ]
+        + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+        + [
+            "cover_change_qa",
+            "cover_change_5km_transition_forest_to_cropland",
+            "cover_change_5km_transition_any_to_built",
+        ]
+        + [f"cover_change_5km_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+        + ["cover_change_5km_qa"],
+    ),
+    "village_boundaries.yaml": (
+        "villages.csv",
+        VILLAGE_COLUMNS
+        + [
+            "ndvi_mean",
+            "ndvi_median",
+            "ndvi_q10",
+            "ndvi_q90",
+            "ndvi_valid_share",
+            "ndvi_qa",
+            "ndvi_center_mean",
+            "ndvi_center_valid_share",
+            "ndvi_center_qa",
+            "surface_temp_mean",
+            "surface_temp_max",
+            "surface_temp_qa",
+            "lights_area_km2",
+            "lights_density_total",
+            "lights_share_above",
+            "lights_qa",
+        ],
+    ),
 }
 
 
@@ -95,7 +179,7 @@ def test_recipe_runs_with_the_documented_columns(path):
     result = run(path, write=False)
     table = result.table
     assert list(table.columns) == expected
-    assert result.columns == expected[len(expected) - len(result.columns):]
+    assert result.columns == expected[len(expected) - len(result.columns) :]
     assert result.outputs == {}
     # Every record, in the order of the file, with its id as written ("003", not 3).
     assert list(table.iloc[:, 0]) == _ids(table_name)

@@ -44,7 +44,10 @@ def _print_versions(value: bool) -> None:
 @app.callback()
 def _main(
     version: bool = typer.Option(
-        False, "--version", help="Print versions and exit.", is_eager=True,
+        False,
+        "--version",
+        help="Print versions and exit.",
+        is_eager=True,
         callback=_print_versions,
     ),
 ) -> None:

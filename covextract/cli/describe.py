@@ -15,7 +15,7 @@ def describe_command(
     path: Path = typer.Argument(..., help="A raster (GeoTIFF...) or vector/table file."),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
-    """Describe FILE: CRS, grid, bounds, data type, nodata, scale (rasters); columns, geometry (vectors)."""
+    """Describe FILE: CRS, grid, bounds, type, nodata, scale; or columns and geometry types."""
     with cli_errors(debug):
         if path.suffix.lower() in VECTOR_EXTENSIONS:
             from covextract.io.tables import describe_vector

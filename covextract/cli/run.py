@@ -12,9 +12,12 @@ from covextract.cli.common import DEBUG_HELP, cli_errors
 def run_command(
     recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
-    threads: int = typer.Option(None, "--threads", min=1, help="Local threads (default: one per core)."),
+    threads: int = typer.Option(
+        None, "--threads", min=1, help="Local threads (default: one per core)."
+    ),
     scheduler: str = typer.Option(
-        None, "--scheduler",
+        None,
+        "--scheduler",
         help="Run block tasks on an existing dask.distributed scheduler, tcp://HOST:PORT. "
         "Workers must see the same file paths.",
     ),

@@ -25,9 +25,7 @@ def print_summary(result, *, max_rows: int = 8) -> None:
         )
     missing = {k: v for k, v in s["units_without_values"].items() if v}
     if missing:
-        console.print(
-            "units without values: " + ", ".join(f"{k}: {v}" for k, v in missing.items())
-        )
+        console.print("units without values: " + ", ".join(f"{k}: {v}" for k, v in missing.items()))
     if s["qa_counts"]:
         console.print(
             "QA codes: " + ", ".join(f"{k} x{v}" for k, v in sorted(s["qa_counts"].items()))

@@ -44,12 +44,22 @@ BUILTIN_INDICES = {
 }
 
 _BINOPS = {
-    ast.Add: np.add, ast.Sub: np.subtract, ast.Mult: np.multiply, ast.Div: np.divide,
-    ast.Pow: np.power, ast.Mod: np.mod, ast.BitAnd: np.logical_and, ast.BitOr: np.logical_or,
+    ast.Add: np.add,
+    ast.Sub: np.subtract,
+    ast.Mult: np.multiply,
+    ast.Div: np.divide,
+    ast.Pow: np.power,
+    ast.Mod: np.mod,
+    ast.BitAnd: np.logical_and,
+    ast.BitOr: np.logical_or,
 }
 _CMPOPS = {
-    ast.Lt: np.less, ast.LtE: np.less_equal, ast.Gt: np.greater, ast.GtE: np.greater_equal,
-    ast.Eq: np.equal, ast.NotEq: np.not_equal,
+    ast.Lt: np.less,
+    ast.LtE: np.less_equal,
+    ast.Gt: np.greater,
+    ast.GtE: np.greater_equal,
+    ast.Eq: np.equal,
+    ast.NotEq: np.not_equal,
 }
 _UNARY = {ast.USub: np.negative, ast.UAdd: np.positive, ast.Invert: np.logical_not}
 
@@ -87,8 +97,9 @@ class Expression:
                 left = right
             return result
         if isinstance(node, ast.IfExp):
-            return np.where(self._eval(node.test, env), self._eval(node.body, env),
-                            self._eval(node.orelse, env))
+            return np.where(
+                self._eval(node.test, env), self._eval(node.body, env), self._eval(node.orelse, env)
+            )
         if isinstance(node, ast.Call):
             return FUNCTIONS[node.func.id](*[self._eval(a, env) for a in node.args])
         raise AssertionError(f"unchecked node {type(node).__name__}")  # pragma: no cover
@@ -141,8 +152,12 @@ def parse_expression(text: str, bands, *, key: str | None = None) -> Expression:
             if node.id not in bands:
                 hint = difflib.get_close_matches(node.id, bands, n=1)
                 more = f"; did you mean {hint[0]!r}?" if hint else ""
-                _refuse(text, f"{node.id!r} is not a band of this layer (bands: "
-                        f"{', '.join(bands) or 'none'}){more}", key)
+                _refuse(
+                    text,
+                    f"{node.id!r} is not a band of this layer (bands: "
+                    f"{', '.join(bands) or 'none'}){more}",
+                    key,
+                )
             used.append(node.id)
         elif isinstance(node, ast.Call):
             if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
@@ -153,8 +168,12 @@ def parse_expression(text: str, bands, *, key: str | None = None) -> Expression:
             if isinstance(node, ast.UnaryOp) and type(node.op) not in _UNARY:
                 _refuse(text, f"operator {type(node.op).__name__} is not allowed", key)
         else:
-            _refuse(text, f"{type(node).__name__} is not allowed in an expression (only "
-                    "arithmetic, comparisons and a few numpy functions)", key)
+            _refuse(
+                text,
+                f"{type(node).__name__} is not allowed in an expression (only "
+                "arithmetic, comparisons and a few numpy functions)",
+                key,
+            )
     for node in ast.walk(tree):
         if isinstance(node, ast.Name) and node.id in FUNCTIONS:
             # a function name used as a value rather than called

@@ -325,8 +325,11 @@ def reallocate(
             zone_weights = build_weights(zones, grid, "overlap")
         except GeometryError as exc:
             raise GeometryError(f"zone polygons: {exc}") from exc
-    elif (zone_weights.grid_fingerprint != grid.fingerprint or zone_weights.rule != "overlap"
-          or zone_weights.n_units != n_z):
+    elif (
+        zone_weights.grid_fingerprint != grid.fingerprint
+        or zone_weights.rule != "overlap"
+        or zone_weights.n_units != n_z
+    ):
         raise RasterError(
             f"the prebuilt zone weights ({zone_weights.n_units} zones, rule "
             f"{zone_weights.rule!r}) do not fit: reallocation needs 'overlap' weights of the "
@@ -339,8 +342,14 @@ def reallocate(
     combined = _combine(piece_weights, zone_weights, grid)
 
     acc, pstats = stream_pass(
-        combined, grid, _ThresholdedLight(source, thr), weighting=True, thresholds=(0.0,),
-        threads=threads, client=client, progress=progress,
+        combined,
+        grid,
+        _ThresholdedLight(source, thr),
+        weighting=True,
+        thresholds=(0.0,),
+        threads=threads,
+        client=client,
+        progress=progress,
     )
     signal_all = acc.dens if by == "light" else acc.above_area[0.0]
     valid_all = acc.w / 1e6  # weighting on: w = c·A in m², over valid pixels
@@ -366,8 +375,16 @@ def reallocate(
         "dark_zone": dark[piece_zone] & (valid_all[p] > 0),
     }
     values, qa, vshare = _unit_results(
-        units, grid, piece_unit, piece_people, piece_flags, valid_all[p], acc.area_all[p],
-        piece_weights, offgrid_all[p], outside_part,
+        units,
+        grid,
+        piece_unit,
+        piece_people,
+        piece_flags,
+        valid_all[p],
+        acc.area_all[p],
+        piece_weights,
+        offgrid_all[p],
+        outside_part,
     )
 
     unplaced = np.flatnonzero(~allocatable & (totals > 0))
@@ -519,8 +536,12 @@ def _cut_units(units: np.ndarray, zones: np.ndarray):
     present = np.flatnonzero([g is not None and not g.is_empty for g in units])
     outside_part = np.zeros(n_u, dtype=bool)
     if present.size == 0:
-        return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.empty(0, dtype=object),
-                outside_part)
+        return (
+            np.zeros(0, np.int64),
+            np.zeros(0, np.int64),
+            np.empty(0, dtype=object),
+            outside_part,
+        )
     tree = shapely.STRtree(zones)
     hit = tree.query(units[present], predicate="intersects")
     pu = present[hit[0]].astype(np.int64)
@@ -543,7 +564,7 @@ def _cut_units(units: np.ndarray, zones: np.ndarray):
     covered[pu[inside]] = True
     first = np.searchsorted(pu, np.arange(n_u + 1))
     for i in present[~covered[present]]:
-        mine = pieces[first[i]:first[i + 1]]
+        mine = pieces[first[i] : first[i + 1]]
         area = units[i].area
         inner = shapely.union_all(mine).area if mine.size else 0.0
         outside_part[i] = area - inner > OUTSIDE_ZONES_TOL * area
@@ -657,10 +678,21 @@ def _offgrid_km2(weights: WeightSet, area_all_km2: np.ndarray) -> np.ndarray:
     return weights.offgrid * mean_area
 
 
-def _unit_results(units, grid, piece_unit, piece_people, piece_flags, piece_valid, piece_area,
-                  piece_weights, piece_offgrid, outside_part):
+def _unit_results(
+    units,
+    grid,
+    piece_unit,
+    piece_people,
+    piece_flags,
+    piece_valid,
+    piece_area,
+    piece_weights,
+    piece_offgrid,
+    outside_part,
+):
     """Per unit: value, QA codes and valid share from its pieces."""
     n = units.size
+
     def total(weights):  # float even without pieces (bincount of nothing gives ints)
         return np.bincount(piece_unit, weights=weights, minlength=n).astype(np.float64)
 

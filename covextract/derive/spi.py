@@ -332,12 +332,13 @@ def spi(
     T, C, S, B, NF, SH = (a[:, where] for a in (totals, category, value, beyond, no_fit, short))
     missing_total = np.isnan(T)
     early = np.broadcast_to(before_series[where], T.shape)
-    qa = _qa_column({
-        "window_outside_series": missing_total & early,
-        "window_gap": missing_total & ~early,
-        "short_baseline": SH,
-        "no_fit": NF,
-        "beyond_fit": B & ~missing_total,
-    })
+    qa = _qa_column(
+        {
+            "window_outside_series": missing_total & early,
+            "window_gap": missing_total & ~early,
+            "short_baseline": SH,
+            "no_fit": NF,
+            "beyond_fit": B & ~missing_total,
+        }
+    )
     return _frame(w.units, w.start, w.end, total=T, value=S, category=C, qa=qa)
-

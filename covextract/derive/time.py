@@ -487,14 +487,28 @@ def window_values(
             i0 = np.searchsorted(w.end, a, side="left")  # first period ending on or after a
             i1 = np.searchsorted(w.start, b, side="right")  # periods starting on or before b
             out[recs], gap[recs] = _one_window(
-                values[rows[recs], i0:i1], w.start[i0:i1], w.end[i0:i1], length[i0:i1], a, b,
-                span0, span1, combine, threshold,
+                values[rows[recs], i0:i1],
+                w.start[i0:i1],
+                w.end[i0:i1],
+                length[i0:i1],
+                a,
+                b,
+                span0,
+                span1,
+                combine,
+                threshold,
             )
             outside[recs] = a < span0 or b > span1
             last_end = w.end[i1 - 1] if i1 > i0 else b
             after[recs] = (b > d[recs]) | (last_end > d[recs])
-    codes = _qa_column({"no_date": ~has_date, "window_outside_series": outside,
-                        "window_gap": gap, "after_visit": after})
+    codes = _qa_column(
+        {
+            "no_date": ~has_date,
+            "window_outside_series": outside,
+            "window_gap": gap,
+            "after_visit": after,
+        }
+    )
 
     return pd.DataFrame(
         {
@@ -570,9 +584,10 @@ def _collapse_wide(w: _Wide, into: str, how: str, min_coverage: float):
     if not 0.0 < min_coverage <= 1.0:
         raise ValueError(f"min_coverage must be in (0, 1]; got {min_coverage}")
     ts, te = _targets(w, into)
-    overlap = _days(
-        np.minimum(te[:, None], w.end[None, :]) - np.maximum(ts[:, None], w.start[None, :])
-    ) + 1
+    overlap = (
+        _days(np.minimum(te[:, None], w.end[None, :]) - np.maximum(ts[:, None], w.start[None, :]))
+        + 1
+    )
     overlap = np.maximum(overlap, 0).astype(np.float64)  # (targets, periods) in days
     frac = overlap / w.length[None, :]
     tlen = (_days(te - ts) + 1).astype(np.float64)
@@ -880,9 +895,22 @@ def anomalies(
     with np.errstate(invalid="ignore", divide="ignore"):
         pct = np.where(zero_normal, np.nan, 100.0 * V / np.where(zero_normal, 1.0, normal))
         z = np.where(zero_spread, np.nan, anomaly / np.where(zero_spread, 1.0, sd))
-    qa = _qa_column({"short_baseline": short, "no_value": np.isnan(V),
-                     "zero_normal": zero_normal, "zero_spread": zero_spread})
+    qa = _qa_column(
+        {
+            "short_baseline": short,
+            "no_value": np.isnan(V),
+            "zero_normal": zero_normal,
+            "zero_spread": zero_spread,
+        }
+    )
     return _frame(
-        w.units, w.start, w.end, value=V, normal=normal, anomaly=anomaly,
-        percent_of_normal=pct, zscore=z, qa=qa,
+        w.units,
+        w.start,
+        w.end,
+        value=V,
+        normal=normal,
+        anomaly=anomaly,
+        percent_of_normal=pct,
+        zscore=z,
+        qa=qa,
     )

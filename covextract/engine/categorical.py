@@ -15,8 +15,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ClassTable", "CategoricalPartial", "CategoricalAccumulator", "categorical_reducer",
-           "PairedSource"]
+__all__ = [
+    "ClassTable",
+    "CategoricalPartial",
+    "CategoricalAccumulator",
+    "categorical_reducer",
+    "PairedSource",
+]
 
 
 @dataclass(frozen=True)
@@ -125,7 +130,9 @@ class _Reducer:
             v = values.ravel()[pix]
             ok = valid.ravel()[pix]
             idx = self.table.index(v[ok])
-            table = np.bincount(local[ok] * kk + idx, weights=w[ok], minlength=k * kk).reshape(k, kk)
+            table = np.bincount(local[ok] * kk + idx, weights=w[ok], minlength=k * kk).reshape(
+                k, kk
+            )
             seen = v[ok][idx == kk - 1]
         count = np.bincount(local[ok], minlength=k).astype(np.int64)
         unknown = np.unique(seen)[:50]

@@ -172,7 +172,9 @@ class Grid:
         """Ground area of the central pixel, used where area does not vary."""
         if self.crs is None or not self.crs.is_projected:
             return self.nominal_pixel_area
-        return float(self._projected_areas(np.array([self.height // 2]), np.array([self.width // 2]))[0])
+        return float(
+            self._projected_areas(np.array([self.height // 2]), np.array([self.width // 2]))[0]
+        )
 
     @cached_property
     def area_varies(self) -> bool:

@@ -130,8 +130,21 @@ def reduce_block(
     if keep_distribution:
         dist = (unit[ok].astype(np.int32), v.copy(), wv.copy())
     return BlockPartial(
-        units, w_all, area_all, count, wsum, mean, m2, csum, dens, vmin, vmax,
-        above_area, above_w, dist, wbase,
+        units,
+        w_all,
+        area_all,
+        count,
+        wsum,
+        mean,
+        m2,
+        csum,
+        dens,
+        vmin,
+        vmax,
+        above_area,
+        above_w,
+        dist,
+        wbase,
     )
 
 

@@ -70,8 +70,15 @@ _LOCAL = np.arange(1 << 20, dtype=np.int64)
 def _continuous_reducer(weighting, thresholds, keep):
     def reduce(unit, pix, cov, values, valid, areas, factor=None):
         return reduce_block(
-            unit, pix, cov, values.ravel(), valid.ravel(), areas,
-            weighting=weighting, thresholds=thresholds, keep_distribution=keep,
+            unit,
+            pix,
+            cov,
+            values.ravel(),
+            valid.ravel(),
+            areas,
+            weighting=weighting,
+            thresholds=thresholds,
+            keep_distribution=keep,
             factor=None if factor is None else factor.ravel()[pix],
         )
 
@@ -88,8 +95,14 @@ def _block_task(source, grid, window, unit, pix, cov, reducer):
         # The source converts pixel by pixel: convert only the pixels the weights use
         # (a few hundred of a tile's 65 536 for village polygons), not the whole block.
         values, valid = source.to_values(np.asarray(stored).ravel()[pix])
-        part = reducer(unit, _LOCAL[: pix.size] if pix.size <= _LOCAL.size else
-                       np.arange(pix.size), cov, values, valid, areas)
+        part = reducer(
+            unit,
+            _LOCAL[: pix.size] if pix.size <= _LOCAL.size else np.arange(pix.size),
+            cov,
+            values,
+            valid,
+            areas,
+        )
         t2 = time.perf_counter()
         return part, t1 - t0, t2 - t1, _worker_name()
     out = source.to_values(stored)
@@ -189,8 +202,9 @@ def stream_pass(
             for b in range(start, min(n, start + batch)):
                 window, unit, pix, cov = weights.block(b)
                 futures.append(
-                    client.submit(_block_task, source, grid, window, unit, pix, cov, *args,
-                                  pure=False)
+                    client.submit(
+                        _block_task, source, grid, window, unit, pix, cov, *args, pure=False
+                    )
                 )
             for result in client.gather(futures):
                 merge(result)

@@ -3,9 +3,9 @@
 A :class:`WeightSet` is the sparse matrix ``W[unit, pixel]`` stored as
 entries sorted by block, then unit: ``unit`` (int32), ``pix`` (int32 pixel
 index *local to its block*, so grids of more than 2³¹ pixels never overflow)
-and ``cov`` (float64 coverage, so weighted values keep full precision). ``starts[b]:starts[b+1]`` are the entries of
-block ``windows[b]``. Blocks without entries are left out, so they are never
-read.
+and ``cov`` (float64 coverage, so weighted values keep full precision).
+``starts[b]:starts[b+1]`` are the entries of block ``windows[b]``. Blocks
+without entries are left out, so they are never read.
 """
 
 from __future__ import annotations

@@ -156,14 +156,24 @@ def zonal(
         table = categorical["table"]
         pass_source = PairedSource(source, earlier) if earlier is not None else source
         acc, pstats = stream_pass(
-            weights, grid, pass_source, weighting=weighting, progress=progress,
-            threads=threads, client=client,
+            weights,
+            grid,
+            pass_source,
+            weighting=weighting,
+            progress=progress,
+            threads=threads,
+            client=client,
             reducer=categorical_reducer(table, weighting=weighting, paired=earlier is not None),
             accumulator=CategoricalAccumulator(weights.n_units, table, paired=earlier is not None),
         )
         offgrid_w = _offgrid_weight(weights, cov_on, acc.area_all, weighting)
-        values = finalize_categorical(acc, stats, categorical.get("groups") or {},
-                                      offgrid_w=offgrid_w, pairs=categorical.get("pairs") or ())
+        values = finalize_categorical(
+            acc,
+            stats,
+            categorical.get("groups") or {},
+            offgrid_w=offgrid_w,
+            pairs=categorical.get("pairs") or (),
+        )
         valid_w = acc.table.sum(axis=tuple(range(1, acc.table.ndim)))
         unknown = sorted(acc.unknown)
     else:
@@ -210,8 +220,14 @@ def zonal(
                 codes.append("low_valid")
         qa.append(codes)
     result = ZonalResult(
-        values, qa, vshare, pstats.blocks, built,
-        pstats.read_seconds, pstats.reduce_seconds, pstats.workers,
+        values,
+        qa,
+        vshare,
+        pstats.blocks,
+        built,
+        pstats.read_seconds,
+        pstats.reduce_seconds,
+        pstats.workers,
     )
     result.unknown_codes = unknown
     return result
@@ -242,7 +258,10 @@ def _geometry_flags(geoms, grid, n: int):
     gx0, gy0, gx1, gy1 = grid.bounds
     with np.errstate(invalid="ignore"):
         meets = (
-            (bounds[:, 0] <= gx1) & (bounds[:, 2] >= gx0) & (bounds[:, 1] <= gy1) & (bounds[:, 3] >= gy0)
+            (bounds[:, 0] <= gx1)
+            & (bounds[:, 2] >= gx0)
+            & (bounds[:, 1] <= gy1)
+            & (bounds[:, 3] >= gy0)
         )
     return has, meets & has
 
@@ -359,9 +378,19 @@ def zonal_units(
             built += 1
             if cache is not None and key is not None:
                 cache.put(key, ws)
-        res = zonal(source, sub, stats, rule=rule, area_weighting=area_weighting,
-                    threshold=threshold, weights=ws, progress=progress, threads=threads,
-                    client=client, categorical=categorical)
+        res = zonal(
+            source,
+            sub,
+            stats,
+            rule=rule,
+            area_weighting=area_weighting,
+            threshold=threshold,
+            weights=ws,
+            progress=progress,
+            threads=threads,
+            client=client,
+            categorical=categorical,
+        )
         total.unknown_codes = sorted(set(total.unknown_codes) | set(res.unknown_codes))
         for name, arr in res.values.items():
             if name not in out_values:

@@ -216,10 +216,12 @@ def open_layer(
             if ds.crs is None and crs is None:
                 raise RasterError(
                     f"{label} {path} has no CRS, so units cannot be placed on it. Add "
-                    "crs: (for example crs: \"EPSG:4326\") to the layer in the recipe, "
+                    'crs: (for example crs: "EPSG:4326") to the layer in the recipe, '
                     "or fix the file."
                 )
-            grid_crs = CRS.from_user_input(crs) if crs is not None else CRS.from_wkt(ds.crs.to_wkt())
+            grid_crs = (
+                CRS.from_user_input(crs) if crs is not None else CRS.from_wkt(ds.crs.to_wkt())
+            )
             t = ds.transform
             if t.b != 0 or t.d != 0:
                 raise RasterError(
@@ -232,7 +234,9 @@ def open_layer(
             if ds.nodatavals[band - 1] is not None:
                 nd.append(float(ds.nodatavals[band - 1]))
             if nodata is not None:
-                nd.extend(float(v) for v in (nodata if isinstance(nodata, list | tuple) else [nodata]))
+                nd.extend(
+                    float(v) for v in (nodata if isinstance(nodata, list | tuple) else [nodata])
+                )
             file_scale = ds.scales[band - 1] if ds.scales else 1.0
             file_offset = ds.offsets[band - 1] if ds.offsets else 0.0
             return RasterSource(

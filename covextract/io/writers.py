@@ -47,7 +47,9 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise OutputError(f"cannot create the output folder {path.parent}: {exc}") from exc
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".tmp{path.suffix}", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(
+        prefix=f".{path.name}.", suffix=f".tmp{path.suffix}", dir=path.parent
+    )
     os.close(fd)
     tmp_path = Path(tmp)
     try:
@@ -71,5 +73,5 @@ def atomic_write_bytes(path, data: bytes) -> Path:
 
 
 def atomic_write_text(path, text: str) -> Path:
-    """Write UTF-8 text atomically (``\\n`` line endings)."""
+    """Write UTF-8 text atomically (the text's own line endings are kept)."""
     return atomic_write_bytes(path, text.encode("utf-8"))

@@ -44,13 +44,18 @@ STAT_DEFINITIONS = {
         "densities such as people per km2 or radiance)"
     ),
     "area_km2": "area of the unit on the raster grid, km2 (coverage x true pixel area)",
-    "mean": "weighted mean of valid pixels (weight = coverage x true pixel area when area weighting is on)",
+    "mean": (
+        "weighted mean of valid pixels (weight = coverage x true pixel area when area "
+        "weighting is on)"
+    ),
     "std": "weighted standard deviation of valid pixels, ddof = 0 (weights are areas)",
     "min": "smallest valid pixel value among covered pixels",
     "max": "largest valid pixel value among covered pixels",
     "median": "weighted median (weighted generalisation of numpy's linear percentile)",
     "percentile": "weighted {q}th percentile (weighted generalisation of numpy's linear method)",
-    "area_above": "area, km2, of valid pixels with value > {threshold} (coverage x true pixel area)",
+    "area_above": (
+        "area, km2, of valid pixels with value > {threshold} (coverage x true pixel area)"
+    ),
     "share_above": "share of the valid (weighted) area with value > {threshold}",
     "value": "value of the raster at the point ({method}); missing when that pixel is nodata",
 }

@@ -17,8 +17,18 @@ from covextract.io.writers import atomic_write_text
 __all__ = ["file_sha256", "package_versions", "write_manifest", "verify_manifest"]
 
 _PACKAGES = (
-    "covextract", "numpy", "scipy", "pandas", "rasterio", "geopandas", "pyogrio",
-    "shapely", "pyproj", "pyarrow", "pydantic", "dask",
+    "covextract",
+    "numpy",
+    "scipy",
+    "pandas",
+    "rasterio",
+    "geopandas",
+    "pyogrio",
+    "shapely",
+    "pyproj",
+    "pyarrow",
+    "pydantic",
+    "dask",
 )
 
 
@@ -65,8 +75,17 @@ def package_versions() -> dict:
     return out
 
 
-def write_manifest(path, *, recipe_fingerprint: str, recipe_file, inputs: list[dict],
-                   outputs: list, layers: dict, started: datetime, extra: dict | None = None):
+def write_manifest(
+    path,
+    *,
+    recipe_fingerprint: str,
+    recipe_file,
+    inputs: list[dict],
+    outputs: list,
+    layers: dict,
+    started: datetime,
+    extra: dict | None = None,
+):
     """Write the manifest JSON (call after every other output is in place).
 
     Parameters
@@ -81,16 +100,20 @@ def write_manifest(path, *, recipe_fingerprint: str, recipe_file, inputs: list[d
     finished = datetime.now(timezone.utc)
     doc = {
         "manifest_version": 1,
-        "recipe": {"file": str(recipe_file) if recipe_file else None,
-                   "fingerprint": recipe_fingerprint},
+        "recipe": {
+            "file": str(recipe_file) if recipe_file else None,
+            "fingerprint": recipe_fingerprint,
+        },
         "inputs": [
-            {**item, "path": str(item["path"]), "sha256": file_sha256(item["path"]),
-             "bytes": Path(item["path"]).stat().st_size}
+            {
+                **item,
+                "path": str(item["path"]),
+                "sha256": file_sha256(item["path"]),
+                "bytes": Path(item["path"]).stat().st_size,
+            }
             for item in inputs
         ],
-        "outputs": [
-            {"path": str(p), "sha256": file_sha256(p)} for p in outputs
-        ],
+        "outputs": [{"path": str(p), "sha256": file_sha256(p)} for p in outputs],
         "layers": layers,
         "versions": package_versions(),
         "run": {

@@ -66,7 +66,9 @@ def augment_table(frame: pd.DataFrame, columns: dict, *, as_text: bool) -> pd.Da
         arr = np.asarray(values) if not isinstance(values, list) else values
         if isinstance(arr, np.ndarray) and arr.dtype.kind in "fiu":
             if as_text:
-                new[name] = pd.Series([format_number(v) for v in arr], index=out.index, dtype=object)
+                new[name] = pd.Series(
+                    [format_number(v) for v in arr], index=out.index, dtype=object
+                )
             elif arr.dtype.kind in "iu":
                 new[name] = pd.Series(arr, index=out.index, dtype="Int64")
             else:

@@ -80,7 +80,13 @@ RECIPE_VERSION = 1
 NAME_PATTERN = r"^[a-z][a-z0-9_]*$"
 #: Statistics of categorical layers (``share`` gives one column per class or group).
 CATEGORICAL_STATS = (
-    "share", "dominant", "classes_present", "shannon", "valid_share", "transition", "net_change",
+    "share",
+    "dominant",
+    "classes_present",
+    "shannon",
+    "valid_share",
+    "transition",
+    "net_change",
 )
 #: Categorical statistics that compare with an earlier layer (``since:``).
 CHANGE_STATS = ("transition", "net_change")
@@ -647,22 +653,44 @@ class Layer(_Model):
     def _band_rules(self) -> list:
         issues = []
         if self.file is None and self.bands is None:
-            issues.append(_issue(("file",), "a layer needs file: <raster>, or bands: with an "
-                                 "index: or expression: combining them"))
+            issues.append(
+                _issue(
+                    ("file",),
+                    "a layer needs file: <raster>, or bands: with an "
+                    "index: or expression: combining them",
+                )
+            )
         if self.file is not None and self.bands is not None:
             issues.append(_issue(("bands",), "give either file: or bands:, not both", None))
         if self.bands is not None:
             if self.kind == "categorical":
-                issues.append(_issue(("bands",), "band math gives continuous values; remove "
-                                     "kind: categorical", None))
+                issues.append(
+                    _issue(
+                        ("bands",),
+                        "band math gives continuous values; remove kind: categorical",
+                        None,
+                    )
+                )
             if (self.index is None) == (self.expression is None):
-                issues.append(_issue(("index",), "bands: need exactly one of index: (ndvi, evi) "
-                                     "or expression: to combine them", None))
+                issues.append(
+                    _issue(
+                        ("index",),
+                        "bands: need exactly one of index: (ndvi, evi) "
+                        "or expression: to combine them",
+                        None,
+                    )
+                )
             needed = {"ndvi": ("nir", "red"), "evi": ("nir", "red", "blue")}.get(self.index, ())
             missing = [b for b in needed if b not in self.bands]
             if missing:
-                issues.append(_issue(("bands",), f"index {self.index} needs bands named "
-                                     f"{', '.join(needed)}; missing: {', '.join(missing)}", None))
+                issues.append(
+                    _issue(
+                        ("bands",),
+                        f"index {self.index} needs bands named "
+                        f"{', '.join(needed)}; missing: {', '.join(missing)}",
+                        None,
+                    )
+                )
             if self.expression is not None:
                 from covextract.derive.expression import parse_expression
                 from covextract.errors import RecipeError
@@ -670,14 +698,20 @@ class Layer(_Model):
                 try:
                     parse_expression(self.expression, self.bands)
                 except RecipeError as exc:
-                    issues.append(_issue(("expression",), exc.problems[0].message,
-                                         self.expression))
+                    issues.append(_issue(("expression",), exc.problems[0].message, self.expression))
         elif self.index is not None or self.expression is not None:
             key = "index" if self.index is not None else "expression"
-            issues.append(_issue((key,), f"{key}: combines bands: add bands: {{name: {{file: "
-                                 "...}}}} to this layer", getattr(self, key)))
+            issues.append(
+                _issue(
+                    (key,),
+                    f"{key}: combines bands: add bands: {{name: {{file: ...}}}}}}}} to this layer",
+                    getattr(self, key),
+                )
+            )
         if self.ceiling is not None and self.kind == "categorical":
-            issues.append(_issue(("ceiling",), "ceiling applies to continuous values", self.ceiling))
+            issues.append(
+                _issue(("ceiling",), "ceiling applies to continuous values", self.ceiling)
+            )
         return issues
 
 
@@ -723,8 +757,10 @@ class Reallocate(_Model):
     @model_validator(mode="after")
     def _threshold_for_lit_area(self) -> Reallocate:
         if self.by == "lit_area" and self.threshold is None:
-            _raise_issues("Reallocate", [_issue(("threshold",), "by: lit_area needs threshold: "
-                                                "<background light level>")])
+            _raise_issues(
+                "Reallocate",
+                [_issue(("threshold",), "by: lit_area needs threshold: <background light level>")],
+            )
         return self
 
 
@@ -947,13 +983,23 @@ def _check_covariate(
     proxies = [k for k in PROXY_STATS if cov.get(k) is not None]
     proxy = proxies[0] if proxies else None
     if len(proxies) > 1:
-        issues.append(_issue(loc + (proxies[1],), "give reallocate: or calibrate:, not both "
-                             "(use two covariates with different names)"))
+        issues.append(
+            _issue(
+                loc + (proxies[1],),
+                "give reallocate: or calibrate:, not both "
+                "(use two covariates with different names)",
+            )
+        )
     if proxy is not None and kind == "categorical":
         issues.append(_issue(loc + (proxy,), f"{proxy}: needs a continuous light layer", layer))
     if proxy is not None and point:
-        issues.append(_issue(loc + (proxy,), f"{proxy}: needs area units (buffers or "
-                             "boundaries), not values at points", None))
+        issues.append(
+            _issue(
+                loc + (proxy,),
+                f"{proxy}: needs area units (buffers or boundaries), not values at points",
+                None,
+            )
+        )
     stats = cov.get("stats")
     names = [s for s in stats if isinstance(s, str)] if isinstance(stats, list) else []
     if isinstance(stats, list):
@@ -966,10 +1012,15 @@ def _check_covariate(
                 )
             elif proxy is not None:
                 if stat not in PROXY_STATS[proxy]:
-                    issues.append(_issue(loc + ("stats", j), f"a covariate with {proxy}: gives "
-                                         f"stats: {list(PROXY_STATS[proxy])}; {stat!r} is not one"
-                                         " (put other statistics in a covariate of their own)",
-                                         stat))
+                    issues.append(
+                        _issue(
+                            loc + ("stats", j),
+                            f"a covariate with {proxy}: gives "
+                            f"stats: {list(PROXY_STATS[proxy])}; {stat!r} is not one"
+                            " (put other statistics in a covariate of their own)",
+                            stat,
+                        )
+                    )
             elif kind is not None:
                 # With the unit shape unclear, report only names wrong either way.
                 modes = (False, True) if point is None else (point,)
@@ -1028,44 +1079,85 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
     spec = layers.get(layer) if isinstance(layer, str) else None
     kind = spec.get("kind", "continuous") if isinstance(spec, dict) else None
     if wants and since is None:
-        issues.append(_issue(loc + ("since",), f"statistic {wants[0]} compares with an earlier "
-                             "layer: add since: <name of the earlier categorical layer>"))
+        issues.append(
+            _issue(
+                loc + ("since",),
+                f"statistic {wants[0]} compares with an earlier "
+                "layer: add since: <name of the earlier categorical layer>",
+            )
+        )
     if since is not None:
         if kind is not None and kind != "categorical":
             issues.append(_issue(loc + ("since",), "since: is for categorical layers only", since))
         if isinstance(since, str) and since not in layers:
-            issues.append(_issue(loc + ("since",), f"unknown layer {since!r}{_hint(since, layers)}",
-                                 since))
+            issues.append(
+                _issue(loc + ("since",), f"unknown layer {since!r}{_hint(since, layers)}", since)
+            )
         elif isinstance(since, str):
             other = layers[since]
             if isinstance(other, dict) and other.get("kind", "continuous") != "categorical":
-                issues.append(_issue(loc + ("since",), f"layer {since!r} is not categorical; "
-                                     "transitions compare two categorical layers", since))
-            elif isinstance(spec, dict) and isinstance(other, dict) and (
-                (spec.get("classes") or {}) != (other.get("classes") or {})
+                issues.append(
+                    _issue(
+                        loc + ("since",),
+                        f"layer {since!r} is not categorical; "
+                        "transitions compare two categorical layers",
+                        since,
+                    )
+                )
+            elif (
+                isinstance(spec, dict)
+                and isinstance(other, dict)
+                and ((spec.get("classes") or {}) != (other.get("classes") or {}))
             ):
-                issues.append(_issue(loc + ("since",), f"layers {layer!r} and {since!r} have "
-                                     "different class tables; transitions need the same classes",
-                                     since))
+                issues.append(
+                    _issue(
+                        loc + ("since",),
+                        f"layers {layer!r} and {since!r} have "
+                        "different class tables; transitions need the same classes",
+                        since,
+                    )
+                )
         if not wants:
-            issues.append(_issue(loc + ("since",), "since: is only used by transition and "
-                                 "net_change; add one of them to stats or remove since", since))
+            issues.append(
+                _issue(
+                    loc + ("since",),
+                    "since: is only used by transition and "
+                    "net_change; add one of them to stats or remove since",
+                    since,
+                )
+            )
     weight_by = cov.get("weight_by")
     if isinstance(weight_by, str):
         other = layers.get(weight_by)
         if other is None:
-            issues.append(_issue(loc + ("weight_by",), f"unknown layer {weight_by!r}"
-                                 f"{_hint(weight_by, layers)}", weight_by))
+            issues.append(
+                _issue(
+                    loc + ("weight_by",),
+                    f"unknown layer {weight_by!r}{_hint(weight_by, layers)}",
+                    weight_by,
+                )
+            )
         elif isinstance(other, dict) and other.get("kind", "continuous") != "continuous":
-            issues.append(_issue(loc + ("weight_by",), f"layer {weight_by!r} holds class codes; "
-                                 "weight_by needs a continuous layer such as population density",
-                                 weight_by))
+            issues.append(
+                _issue(
+                    loc + ("weight_by",),
+                    f"layer {weight_by!r} holds class codes; "
+                    "weight_by needs a continuous layer such as population density",
+                    weight_by,
+                )
+            )
         if kind == "categorical":
-            issues.append(_issue(loc + ("weight_by",), "weight_by applies to continuous layers",
-                                 weight_by))
+            issues.append(
+                _issue(loc + ("weight_by",), "weight_by applies to continuous layers", weight_by)
+            )
     if "transition" in stats and not pairs:
-        issues.append(_issue(loc + ("pairs",), "statistic transition needs pairs: [[from, to], "
-                             "...] naming classes or groups (from may be any)"))
+        issues.append(
+            _issue(
+                loc + ("pairs",),
+                "statistic transition needs pairs: [[from, to], "
+                "...] naming classes or groups (from may be any)",
+            )
+        )
     if pairs and "transition" not in stats:
         issues.append(_issue(loc + ("pairs",), "pairs: is only used by transition", pairs))
     if isinstance(pairs, list) and isinstance(spec, dict):
@@ -1079,9 +1171,15 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
                 if label == "any" and k == 0:
                     continue
                 if label not in labels:
-                    issues.append(_issue(loc + ("pairs", j, k), f"{label!r} is not a class or "
-                                         f"group of layer {layer!r}{_hint(label, labels)}; known: "
-                                         + ", ".join(sorted(labels)), label))
+                    issues.append(
+                        _issue(
+                            loc + ("pairs", j, k),
+                            f"{label!r} is not a class or "
+                            f"group of layer {layer!r}{_hint(label, labels)}; known: "
+                            + ", ".join(sorted(labels)),
+                            label,
+                        )
+                    )
     return issues
 
 

@@ -33,7 +33,13 @@ from covextract.engine.categorical import CategoricalAccumulator
 __all__ = ["CATEGORICAL_STAT_NAMES", "categorical_columns", "finalize_categorical"]
 
 CATEGORICAL_STAT_NAMES = (
-    "share", "dominant", "classes_present", "shannon", "valid_share", "transition", "net_change",
+    "share",
+    "dominant",
+    "classes_present",
+    "shannon",
+    "valid_share",
+    "transition",
+    "net_change",
 )
 
 
@@ -65,8 +71,9 @@ def categorical_columns(stats, table, groups: dict, pairs=()) -> list[tuple[str,
     return cols
 
 
-def finalize_categorical(acc: CategoricalAccumulator, stats, groups: dict, *, offgrid_w,
-                         pairs=()) -> dict:
+def finalize_categorical(
+    acc: CategoricalAccumulator, stats, groups: dict, *, offgrid_w, pairs=()
+) -> dict:
     """Arrays per column suffix (see :func:`categorical_columns`)."""
     table = acc.table_def
     n = acc.n_units
@@ -85,16 +92,16 @@ def finalize_categorical(acc: CategoricalAccumulator, stats, groups: dict, *, of
     out = {}
     for suffix, stat in categorical_columns(stats, table, groups, pairs):
         if stat == "share":
-            label = suffix[len("share_"):]
+            label = suffix[len("share_") :]
             val = p_later[:, _members(label, table, groups)].sum(axis=1)
             out[suffix] = np.where(has, val, nan)
         elif stat == "net_change":
-            label = suffix[len("net_change_"):]
+            label = suffix[len("net_change_") :]
             m = _members(label, table, groups)
             val = p_later[:, m].sum(axis=1) - p_earlier[:, m].sum(axis=1)
             out[suffix] = np.where(has, val, nan)
         elif stat == "transition":
-            a, b = suffix[len("transition_"):].split("_to_", 1)
+            a, b = suffix[len("transition_") :].split("_to_", 1)
             to_cols = _members(b, table, groups)
             if a == "any":
                 from_cols = [i for i in range(table.size) if i not in to_cols]

@@ -136,8 +136,16 @@ class Report:
             else:
                 ok = {">=": value >= bound, "<=": value <= bound, "<": value < bound}[op]
                 status = "PASS" if ok else "MISS"
-        row = Row(key, label, None if value is None else float(value), unit, target, status, note,
-                  None if cpu is None else float(cpu))
+        row = Row(
+            key,
+            label,
+            None if value is None else float(value),
+            unit,
+            target,
+            status,
+            note,
+            None if cpu is None else float(cpu),
+        )
         self.rows.append(row)
         return row
 
@@ -187,8 +195,10 @@ def format_report(report: Report) -> str:
         p(f"  {name:<84} {sec:9.3f} {'' if cpu is None else f'{cpu:9.3f}':>9}")
     p("")
     width = max([len(r.label) for r in report.rows] + [20])
-    p(f"{'ratio (wall time; cpu: the same ratio of CPU times)':<{width}}  {'value':>10}  "
-      f"{'cpu':>8}  {'target':>10}  status")
+    p(
+        f"{'ratio (wall time; cpu: the same ratio of CPU times)':<{width}}  {'value':>10}  "
+        f"{'cpu':>8}  {'target':>10}  status"
+    )
     for r in report.rows:
         cpu = "" if r.cpu_value is None or r.unit != "x" else _fmt(r.cpu_value, r.unit)
         p(f"{r.label:<{width}}  {_fmt(r.value, r.unit):>10}  {cpu:>8}  {r.target:>10}  {r.status}")
@@ -346,8 +356,15 @@ def cx_pass(path, geoms, stats, *, rule, weighting, weights, threads=None, sourc
 
     clock = Clock()
     src = source if source is not None else _open(path)
-    res = zonal(src, geoms, stats, rule=rule, area_weighting=weighting, weights=weights,
-                **_threads_kw(threads))
+    res = zonal(
+        src,
+        geoms,
+        stats,
+        rule=rule,
+        area_weighting=weighting,
+        weights=weights,
+        **_threads_kw(threads),
+    )
     dt = clock.stop()
     if source is None:
         _release(src)
@@ -372,8 +389,9 @@ def rasterstats_run(path, geoms, nodata):
     """``(seconds, list of dict)`` of rasterstats ``zonal_stats`` (center rule)."""
     from rasterstats import zonal_stats
 
-    return _timed(zonal_stats, list(geoms), str(path), stats=list(STATS), nodata=nodata,
-                  all_touched=False)
+    return _timed(
+        zonal_stats, list(geoms), str(path), stats=list(STATS), nodata=nodata, all_touched=False
+    )
 
 
 def compare_with_rasterstats(values: dict, ref: list, index: np.ndarray) -> dict:
@@ -464,7 +482,7 @@ class InMemorySource:
     def read_block(self, window):
         """Stored values of ``(row_off, col_off, rows, cols)`` (a view)."""
         r0, c0, h, w = window
-        return self._array[r0:r0 + h, c0:c0 + w]
+        return self._array[r0 : r0 + h, c0 : c0 + w]
 
     def to_values(self, stored):
         """Physical values and valid mask, as the file's source computes them."""
@@ -659,8 +677,9 @@ def run_threads(scene: Scene, report: Report, polys, bufs, state: dict) -> None:
     mem = InMemorySource(src, array)
     runs = {}
     for t in (1, 2):
-        dt, res = cx_pass(None, bufs, stats, rule="center", weighting="off", weights=ws_b,
-                          threads=t, source=mem)
+        dt, res = cx_pass(
+            None, bufs, stats, rule="center", weighting="off", weights=ws_b, threads=t, source=mem
+        )
         report.record(f"threads: buffers pass, blocks from memory, {t} thread(s)", dt)
         runs[t] = (dt, res.values)
     state["accum"] = (runs[1][0], runs[2][0])
@@ -678,8 +697,9 @@ def run_threads(scene: Scene, report: Report, polys, bufs, state: dict) -> None:
         _log(f"threads: whole {name} pass (center) from the file, 1 and 2 threads")
         times = []
         for t in (1, 2):
-            dt, res = cx_pass(path, geoms, stats, rule="center", weighting="off", weights=ws,
-                              threads=t)
+            dt, res = cx_pass(
+                path, geoms, stats, rule="center", weighting="off", weights=ws, threads=t
+            )
             report.record(f"threads: {name} pass from the file, {t} thread(s)", dt)
             _pass_split(report, f"threads: {name} pass from the file, {t} thread(s)", res)
             times.append(dt)
@@ -704,48 +724,88 @@ def add_ratios(report: Report, state: dict) -> None:
     fl = state["floor"]
     pb, pp, _ = state["poly_center"]
     bb, bp, _ = state["buf_center"]
-    add("polygons_vs_rasterstats", "polygons: rasterstats / covextract (center, first run)",
-        lambda g: g(state["rs_poly"]) / (g(pb) + g(pp)))
-    add("polygons_vs_floor", "polygons: covextract (center, first run) / floor",
-        lambda g: (g(pb) + g(pp)) / g(fl))
-    add("polygons_cached_vs_floor", "polygons: covextract pass only (weights given) / floor",
-        lambda g: g(pp) / g(fl))
-    add("buffers_vs_rasterstats", "buffers: rasterstats (scaled) / covextract (center, first run)",
+    add(
+        "polygons_vs_rasterstats",
+        "polygons: rasterstats / covextract (center, first run)",
+        lambda g: g(state["rs_poly"]) / (g(pb) + g(pp)),
+    )
+    add(
+        "polygons_vs_floor",
+        "polygons: covextract (center, first run) / floor",
+        lambda g: (g(pb) + g(pp)) / g(fl),
+    )
+    add(
+        "polygons_cached_vs_floor",
+        "polygons: covextract pass only (weights given) / floor",
+        lambda g: g(pp) / g(fl),
+    )
+    add(
+        "buffers_vs_rasterstats",
+        "buffers: rasterstats (scaled) / covextract (center, first run)",
         lambda g: g(state["rs_buf"]) / (g(bb) + g(bp)),
-        note=f"rasterstats timed on {state['rs_buf_subset']} buffers and scaled linearly")
-    add("buffers_vs_floor", "buffers: covextract (center, first run) / floor",
-        lambda g: (g(bb) + g(bp)) / g(fl))
+        note=f"rasterstats timed on {state['rs_buf_subset']} buffers and scaled linearly",
+    )
+    add(
+        "buffers_vs_floor",
+        "buffers: covextract (center, first run) / floor",
+        lambda g: (g(bb) + g(bp)) / g(fl),
+    )
     for name, (cb, cp) in (("polygons", (pb, pp)), ("buffers", (bb, bp))):
         if f"{name}_overlap" in state:
             ob, op, _ = state[f"{name}_overlap"]
-            add(f"overlap_vs_center_{name}", f"{name}: overlap / center (first runs)",
-                lambda g, ob=ob, op=op, cb=cb, cp=cp: (g(ob) + g(op)) / (g(cb) + g(cp)))
-            add(f"overlap_vs_center_build_{name}", f"{name}: overlap / center (build_weights only)",
-                lambda g, ob=ob, cb=cb: g(ob) / g(cb))
+            add(
+                f"overlap_vs_center_{name}",
+                f"{name}: overlap / center (first runs)",
+                lambda g, ob=ob, op=op, cb=cb, cp=cp: (g(ob) + g(op)) / (g(cb) + g(cp)),
+            )
+            add(
+                f"overlap_vs_center_build_{name}",
+                f"{name}: overlap / center (build_weights only)",
+                lambda g, ob=ob, cb=cb: g(ob) / g(cb),
+            )
     if "first" in state:
-        add("second_vs_first", "polygons: second run (cached weights) / first run",
-            lambda g: g(state["second"]) / g(state["first"]))
+        add(
+            "second_vs_first",
+            "polygons: second run (cached weights) / first run",
+            lambda g: g(state["second"]) / g(state["first"]),
+        )
     if "series" in state:
         ts, tsb, tf, n = state["series"]
-        add("series_vs_floor", f"series: {n} steps (one build + {n} passes) / floor of the {n}",
-            lambda g: g(ts) / g(tf))
-        add("series_passes_vs_floor", f"series: {n} passes only / floor of the {n}",
-            lambda g: (g(ts) - g(tsb)) / g(tf))
-        add("series_floor_vs_24_floor", f"series: floor of the {n} / ({n} x main floor)",
-            lambda g: g(tf) / (n * g(fl)))
-    add("floor_speedup_2_threads", "read floor: 1-thread / 2-thread time (speed-up)",
-        lambda g: g(fl) / g(state["floor2"]))
+        add(
+            "series_vs_floor",
+            f"series: {n} steps (one build + {n} passes) / floor of the {n}",
+            lambda g: g(ts) / g(tf),
+        )
+        add(
+            "series_passes_vs_floor",
+            f"series: {n} passes only / floor of the {n}",
+            lambda g: (g(ts) - g(tsb)) / g(tf),
+        )
+        add(
+            "series_floor_vs_24_floor",
+            f"series: floor of the {n} / ({n} x main floor)",
+            lambda g: g(tf) / (n * g(fl)),
+        )
+    add(
+        "floor_speedup_2_threads",
+        "read floor: 1-thread / 2-thread time (speed-up)",
+        lambda g: g(fl) / g(state["floor2"]),
+    )
     if "accum" in state:
         a1, a2 = state["accum"]
-        add("accumulation_speedup_2_threads",
+        add(
+            "accumulation_speedup_2_threads",
             "per-block work (blocks from memory): 1-thread / 2-thread time",
-            lambda g: g(a1) / g(a2))
+            lambda g: g(a1) / g(a2),
+        )
     for name in ("buffers", "polygons"):
         if f"pass_threads_{name}" in state:
             t1, t2 = state[f"pass_threads_{name}"]
-            add(f"pass_speedup_2_threads_{name}",
+            add(
+                f"pass_speedup_2_threads_{name}",
                 f"{name} pass from the file: 1-thread / 2-thread time",
-                lambda g, t1=t1, t2=t2: g(t1) / g(t2))
+                lambda g, t1=t1, t2=t2: g(t1) / g(t2),
+            )
 
 
 # ------------------------------------------------------------------ memory
@@ -779,13 +839,26 @@ def run_memory(scene: Scene, report: Report, cap_gib: float) -> None:
         with tempfile.TemporaryDirectory(prefix="covextract-mem-") as tmp:
             out = Path(tmp) / "child.json"
             params = {
-                "vrt": str(mosaic.path), "repeat": mosaic.repeat, "side": mosaic.side,
-                "tile": spec.size, "pixel_deg": spec.pixel_deg, "west": spec.west,
-                "north": spec.north, "n": spec.n_buffers, "buffer_m": spec.buffer_m,
-                "seed": spec.seed, "entry": entry, "out": str(out),
+                "vrt": str(mosaic.path),
+                "repeat": mosaic.repeat,
+                "side": mosaic.side,
+                "tile": spec.size,
+                "pixel_deg": spec.pixel_deg,
+                "west": spec.west,
+                "north": spec.north,
+                "n": spec.n_buffers,
+                "buffer_m": spec.buffer_m,
+                "seed": spec.seed,
+                "entry": entry,
+                "out": str(out),
             }
-            cmd = [sys.executable, "-m", "tests.benchmarks.bench_engine", "--memory-child",
-                   json.dumps(params)]
+            cmd = [
+                sys.executable,
+                "-m",
+                "tests.benchmarks.bench_engine",
+                "--memory-child",
+                json.dumps(params),
+            ]
             if time_bin:
                 cmd = [time_bin, "-v", *cmd]
             env = dict(os.environ)
@@ -797,11 +870,20 @@ def run_memory(scene: Scene, report: Report, cap_gib: float) -> None:
             def limit(cap=cap):
                 resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
 
-            _log(f"memory: {entry} on the mosaic in a subprocess"
-                 + (" under /usr/bin/time -v" if time_bin else ""))
+            _log(
+                f"memory: {entry} on the mosaic in a subprocess"
+                + (" under /usr/bin/time -v" if time_bin else "")
+            )
             t0 = time.perf_counter()
-            proc = subprocess.run(cmd, cwd=REPO_ROOT, env=env, capture_output=True, text=True,
-                                  preexec_fn=limit, check=False)
+            proc = subprocess.run(
+                cmd,
+                cwd=REPO_ROOT,
+                env=env,
+                capture_output=True,
+                text=True,
+                preexec_fn=limit,
+                check=False,
+            )
             wall = time.perf_counter() - t0
             if time_bin:
                 m = re.search(r"Maximum resident set size \(kbytes\): (\d+)", proc.stderr)
@@ -822,8 +904,9 @@ def run_memory(scene: Scene, report: Report, cap_gib: float) -> None:
             parts.append(f"beyond-2^31 check: {child['check']}")
             note = "; ".join(parts)
         gib = peak / GIB if peak is not None else None
-        row = report.add("peak_memory", f"peak RSS, {entry}() on the mosaic (q90 on)", gib,
-                         unit="GiB", note=note)
+        row = report.add(
+            "peak_memory", f"peak RSS, {entry}() on the mosaic (q90 on)", gib, unit="GiB", note=note
+        )
         if not ok:
             row.status = "MISS"
         report.equality[f"mosaic beyond 2^31 pixels ({entry})"] = {
@@ -843,8 +926,14 @@ def memory_child(params: dict) -> int:
     from covextract.stats.names import parse_stat
     from covextract.units.buffers import geodesic_buffers
 
-    mosaic = Mosaic(Path(params["vrt"]), params["repeat"], params["side"], params["pixel_deg"],
-                    params["west"], params["north"])
+    mosaic = Mosaic(
+        Path(params["vrt"]),
+        params["repeat"],
+        params["side"],
+        params["pixel_deg"],
+        params["west"],
+        params["north"],
+    )
     lon, lat = mosaic_buffer_centres(mosaic, params["n"], params["buffer_m"], params["seed"])
     bufs = geodesic_buffers(lon, lat, params["buffer_m"])
     src = open_layer(mosaic.path)
@@ -877,24 +966,34 @@ def memory_child(params: dict) -> int:
     for r, c in zip(rows, cols, strict=True):
         ang = (np.arange(9) + rng.uniform(0.05, 0.95, 9)) * (2 * np.pi / 9)
         rad = rng.uniform(5.0, 15.0, 9)
-        polys.append(shapely.Polygon(np.c_[mosaic.west + (c + rad * np.cos(ang)) * px,
-                                           mosaic.north - (r + rad * np.sin(ang)) * px]))
+        polys.append(
+            shapely.Polygon(
+                np.c_[
+                    mosaic.west + (c + rad * np.cos(ang)) * px,
+                    mosaic.north - (r + rad * np.sin(ang)) * px,
+                ]
+            )
+        )
     far = np.array(polys, dtype=object)
     shift = (k - 1) * tile * px
-    near = np.array([shapely.transform(p, lambda xy: xy - np.array([shift, -shift])) for p in far],
-                    dtype=object)
+    near = np.array(
+        [shapely.transform(p, lambda xy: xy - np.array([shift, -shift])) for p in far], dtype=object
+    )
     names = [parse_stat(s) for s in STATS]
     a = zmod.zonal(src, far, names, rule="center", area_weighting="off")
     b = zmod.zonal(src, near, names, rule="center", area_weighting="off")
-    exact = all(np.array_equal(a.values[s], b.values[s], equal_nan=True)
-                for s in ("count", "min", "max"))
-    close = all(np.allclose(a.values[s], b.values[s], rtol=1e-12, atol=0, equal_nan=True)
-                for s in ("sum", "mean"))
+    exact = all(
+        np.array_equal(a.values[s], b.values[s], equal_nan=True) for s in ("count", "min", "max")
+    )
+    close = all(
+        np.allclose(a.values[s], b.values[s], rtol=1e-12, atol=0, equal_nan=True)
+        for s in ("sum", "mean")
+    )
     filled = int(np.sum(np.asarray(a.values["count"]) > 0))
     result["check"] = (
         f"OK ({filled}/40 polygons at pixel rows >= {int(row0)} equal their copies)"
-        if exact and close and filled > 30 else
-        f"DIFFER (exact {exact}, close {close}, {filled} with pixels)"
+        if exact and close and filled > 30
+        else f"DIFFER (exact {exact}, close {close}, {filled} with pixels)"
     )
     result["ok"] = True
     Path(params["out"]).write_text(json.dumps(result))
@@ -915,9 +1014,14 @@ def run_profile(scene: Scene, report: Report, polys, bufs, folder: Path) -> None
         ("build_buffers_center", lambda: build_weights(bufs, src.grid, "center")),
     ]
     ws_p = build_weights(polys, src.grid, "overlap")
-    cases.append(("pass_polygons_overlap_1thread",
-                  lambda: zonal(_open(scene.raster), polys, stats, rule="overlap", weights=ws_p,
-                                **_threads_kw(1))))
+    cases.append(
+        (
+            "pass_polygons_overlap_1thread",
+            lambda: zonal(
+                _open(scene.raster), polys, stats, rule="overlap", weights=ws_p, **_threads_kw(1)
+            ),
+        )
+    )
     for name, fn in cases:
         _log(f"profile: {name}")
         prof = cProfile.Profile()
@@ -929,7 +1033,7 @@ def run_profile(scene: Scene, report: Report, polys, bufs, folder: Path) -> None
         text = buf.getvalue()
         report.info.setdefault("profiles", {})[name] = str(path)
         print(f"\n---- profile {name} (top 12 by own time; full file {path}) ----")
-        print(text[text.find("ncalls") - 1:] if "ncalls" in text else text)
+        print(text[text.find("ncalls") - 1 :] if "ncalls" in text else text)
     _release(src)
 
 
@@ -962,10 +1066,10 @@ def run(args, report: Report) -> Report:
     report.info["machine"] = (
         f"{os.cpu_count()} cores, load average at start {os.getloadavg()[0]:.2f}; {_versions()}"
     )
-    report.info["engine"] = (
-        "zonal(threads=) "
-        + ("present: passes use the engine's default threads unless a thread count is stated"
-           if zonal_supports("threads") else "absent")
+    report.info["engine"] = "zonal(threads=) " + (
+        "present: passes use the engine's default threads unless a thread count is stated"
+        if zonal_supports("threads")
+        else "absent"
     )
     polys = scene.polygons()
     bufs = scene.buffers()
@@ -1005,14 +1109,25 @@ def main(argv=None) -> int:
         "(see tests/benchmarks/README.md).",
     )
     parser.add_argument("--quick", action="store_true", help="the small scene (4000 x 4000 px)")
-    parser.add_argument("--memory", action="store_true",
-                        help="also measure peak memory on a >6 GB VRT mosaic (slow)")
-    parser.add_argument("--memory-cap-gib", type=float, default=8.0,
-                        help="address-space limit of the memory subprocess, GiB (default 8), "
-                        "so a run that does not bound its memory fails instead of exhausting RAM")
+    parser.add_argument(
+        "--memory",
+        action="store_true",
+        help="also measure peak memory on a >6 GB VRT mosaic (slow)",
+    )
+    parser.add_argument(
+        "--memory-cap-gib",
+        type=float,
+        default=8.0,
+        help="address-space limit of the memory subprocess, GiB (default 8), "
+        "so a run that does not bound its memory fails instead of exhausting RAM",
+    )
     parser.add_argument("--profile", action="store_true", help="also print cProfile summaries")
-    parser.add_argument("--json", type=Path, default=None,
-                        help="where to write the results (default <scene folder>/results.json)")
+    parser.add_argument(
+        "--json",
+        type=Path,
+        default=None,
+        help="where to write the results (default <scene folder>/results.json)",
+    )
     parser.add_argument("--memory-child", default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.memory_child is not None:

@@ -126,12 +126,28 @@ class SceneSpec:
 
 
 FULL = SceneSpec(
-    name="full", size=12_000, pixel_deg=0.0009, west=30.0, north=4.0,
-    n_polygons=5_000, n_buffers=20_000, buffer_m=5_000.0, n_steps=24, seed=1201,
+    name="full",
+    size=12_000,
+    pixel_deg=0.0009,
+    west=30.0,
+    north=4.0,
+    n_polygons=5_000,
+    n_buffers=20_000,
+    buffer_m=5_000.0,
+    n_steps=24,
+    seed=1201,
 )
 QUICK = SceneSpec(
-    name="quick", size=4_000, pixel_deg=0.0009, west=30.0, north=4.0,
-    n_polygons=500, n_buffers=2_000, buffer_m=5_000.0, n_steps=6, seed=401,
+    name="quick",
+    size=4_000,
+    pixel_deg=0.0009,
+    west=30.0,
+    north=4.0,
+    n_polygons=500,
+    n_buffers=2_000,
+    buffer_m=5_000.0,
+    n_steps=6,
+    seed=401,
 )
 
 
@@ -329,9 +345,19 @@ def _write_raster(spec: SceneSpec, path: Path) -> None:
 
     clouds = _clouds(spec)
     profile = dict(
-        driver="GTiff", width=spec.size, height=spec.size, count=1, dtype="float32",
-        crs="EPSG:4326", transform=spec.transform, nodata=spec.nodata, tiled=True,
-        blockxsize=spec.tile, blockysize=spec.tile, compress="deflate", predictor=3,
+        driver="GTiff",
+        width=spec.size,
+        height=spec.size,
+        count=1,
+        dtype="float32",
+        crs="EPSG:4326",
+        transform=spec.transform,
+        nodata=spec.nodata,
+        tiled=True,
+        blockxsize=spec.tile,
+        blockysize=spec.tile,
+        compress="deflate",
+        predictor=3,
         num_threads="all_cpus",
     )
     band_rows = 4 * spec.tile
@@ -391,8 +417,10 @@ def ensure_scene(spec: SceneSpec, root: Path | None = None, log=print) -> Scene:
         shutil.rmtree(folder)
     folder.mkdir(parents=True)
     _write_raster(spec, scene.raster)
-    log(f"  raster {spec.size} x {spec.size} written in {time.perf_counter() - t0:.1f} s "
-        f"({scene.raster.stat().st_size / 1e6:.0f} MB)")
+    log(
+        f"  raster {spec.size} x {spec.size} written in {time.perf_counter() - t0:.1f} s "
+        f"({scene.raster.stat().st_size / 1e6:.0f} MB)"
+    )
     _write_series(spec, scene.raster, folder / "series")
     log(f"  series of {spec.n_steps} rasters written; total {time.perf_counter() - t0:.1f} s")
     tmp = marker.with_suffix(".json.tmp")

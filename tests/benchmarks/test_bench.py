@@ -41,7 +41,12 @@ def quick_results(tmp_path_factory):
     env["PYTHONPATH"] = os.pathsep.join([str(REPO), *extra])
     proc = subprocess.run(
         [sys.executable, "-m", "tests.benchmarks.bench_engine", "--quick", "--json", str(out)],
-        cwd=REPO, env=env, capture_output=True, text=True, timeout=1800, check=False,
+        cwd=REPO,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=1800,
+        check=False,
     )
     assert proc.returncode == 0, proc.stdout[-4000:] + proc.stderr[-4000:]
     return json.loads(out.read_text()), proc.stdout
@@ -93,8 +98,13 @@ def test_every_ratio_is_reported_with_its_target(quick_results):
         assert value is not None and math.isfinite(value) and value > 0, key
         assert rows[key]["label"] in stdout
     assert "scaled linearly" in rows["buffers_vs_rasterstats"]["note"]
-    for key in ("polygons_vs_rasterstats", "polygons_vs_floor", "buffers_vs_rasterstats",
-                "overlap_vs_center_polygons", "series_vs_floor"):
+    for key in (
+        "polygons_vs_rasterstats",
+        "polygons_vs_floor",
+        "buffers_vs_rasterstats",
+        "overlap_vs_center_polygons",
+        "series_vs_floor",
+    ):
         assert rows[key]["status"] in ("PASS", "MISS")
         assert rows[key]["target"]
     t = res["timings_s"]
@@ -113,15 +123,28 @@ def test_comparison_flags_every_kind_of_difference():
     # differ in the sum beyond 1e-5 (unit 0) and in having pixels at all (unit 1).
     from tests.benchmarks.bench_engine import compare_with_rasterstats
 
-    ours = {"count": np.array([3, 0]), "sum": np.array([6.0, np.nan]),
-            "mean": np.array([2.0, np.nan]), "min": np.array([1.0, np.nan]),
-            "max": np.array([3.0, np.nan])}
-    same = [{"count": 3, "sum": 6.0 * (1 + 1e-7), "mean": 2.0, "min": 1.0, "max": 3.0},
-            {"count": 0, "sum": None, "mean": None, "min": None, "max": None}]
-    other = [{"count": 3, "sum": 6.1, "mean": 2.0, "min": 1.0, "max": 3.0},
-             {"count": 1, "sum": 2.0, "mean": 2.0, "min": 2.0, "max": 2.0}]
+    ours = {
+        "count": np.array([3, 0]),
+        "sum": np.array([6.0, np.nan]),
+        "mean": np.array([2.0, np.nan]),
+        "min": np.array([1.0, np.nan]),
+        "max": np.array([3.0, np.nan]),
+    }
+    same = [
+        {"count": 3, "sum": 6.0 * (1 + 1e-7), "mean": 2.0, "min": 1.0, "max": 3.0},
+        {"count": 0, "sum": None, "mean": None, "min": None, "max": None},
+    ]
+    other = [
+        {"count": 3, "sum": 6.1, "mean": 2.0, "min": 1.0, "max": 3.0},
+        {"count": 1, "sum": 2.0, "mean": 2.0, "min": 2.0, "max": 2.0},
+    ]
     assert compare_with_rasterstats(ours, same, np.arange(2))["mismatches"] == 0
     res = compare_with_rasterstats(ours, other, np.arange(2))
     assert {s: v["first_bad_units"] for s, v in res["stats"].items()} == {
-        "count": [1], "sum": [0, 1], "mean": [1], "min": [1], "max": [1]}
+        "count": [1],
+        "sum": [0, 1],
+        "mean": [1],
+        "min": [1],
+        "max": [1],
+    }
     assert res["mismatches"] == 6

@@ -38,7 +38,10 @@ def test_run_writes_the_outputs_and_prints_where_they_are(demo_dir):
     recipe = demo_dir / "recipe.yaml"
     result = runner.invoke(app, ["run", str(recipe)])
     assert result.exit_code == 0, result.output
-    assert "40 units, 5 layers (cover_2021, lights, ndvi, surface_temp, veg), 47 new columns" in result.stdout
+    assert (
+        "40 units, 5 layers (cover_2021, lights, ndvi, surface_temp, veg), 47 new columns"
+        in result.stdout
+    )
     # four grids; covariates on a grid already seen in the run reuse its weights
     assert "weights built: 4, reused from cache: 4" in result.stdout
     # the population-proxy fit is part of the summary (a, b, R2, RMSE, n, smearing)
@@ -71,7 +74,9 @@ def test_run_quiet_prints_nothing_and_still_writes(demo_dir):
 def test_run_shows_warnings_as_one_line_on_stderr(demo_dir, ndvi_recipe, write_recipe):
     (demo_dir / "two.csv").write_text(
         "village_id,lon,lat,visit_date\n001,4.631062,-11.696279,2021-01-14\n"
-        "002,20.0,-12.0,2021-01-14\n", encoding="utf-8")
+        "002,20.0,-12.0,2021-01-14\n",
+        encoding="utf-8",
+    )
     data = ndvi_recipe()
     data["study"]["table"] = "two.csv"
     path = write_recipe(demo_dir, data)
@@ -136,8 +141,9 @@ def test_run_bad_recipe_traceback_only_with_debug(demo_dir, ndvi_recipe, write_r
 
 
 # --------------------------------------------------------------------- describe
-@pytest.mark.parametrize("name", ["ndvi_2021.tif", "surface_temp_2021.tif",
-                                  "night_lights_2021.tif"])
+@pytest.mark.parametrize(
+    "name", ["ndvi_2021.tif", "surface_temp_2021.tif", "night_lights_2021.tif"]
+)
 def test_describe_raster(demo_dir, name):
     path = demo_dir / name
     result = runner.invoke(app, ["describe", str(path)])
@@ -173,8 +179,15 @@ def test_describe_geopackage(demo_dir):
     result = runner.invoke(app, ["describe", str(demo_dir / "village_areas.gpkg")])
     assert result.exit_code == 0, result.output
     lines = result.stdout.splitlines()
-    for line in ("layer: village_areas", "feature_count: 40", "columns:", "  village_id: object",
-                 "geometry_types:", "  Polygon: 40", "crs: EPSG:4326"):
+    for line in (
+        "layer: village_areas",
+        "feature_count: 40",
+        "columns:",
+        "  village_id: object",
+        "geometry_types:",
+        "  Polygon: 40",
+        "crs: EPSG:4326",
+    ):
         assert line in lines
 
 

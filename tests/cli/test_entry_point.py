@@ -18,8 +18,13 @@ def _run(args, cwd, repo_root):
         [str(repo_root)] + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else [])
     )
     return subprocess.run(
-        [sys.executable, "-m", "covextract", *args], cwd=cwd, env=env,
-        capture_output=True, text=True, timeout=120, check=False,
+        [sys.executable, "-m", "covextract", *args],
+        cwd=cwd,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
     )
 
 

@@ -39,22 +39,25 @@ def test_division_by_zero_gives_nodata_not_inf():
     assert np.isnan(out).all()
 
 
-@pytest.mark.parametrize("text,why", [
-    ("nir.__class__", "double underscores"),
-    ("nir.real", "Attribute is not allowed"),
-    ("__import__('os')", "double underscores"),
-    ("open('x')", "only these functions may be called"),
-    ("(lambda: 1)()", "only these functions"),
-    ("[nir for nir in red]", "not allowed"),
-    ("nir[0]", "Subscript is not allowed"),
-    ("swir - red", "'swir' is not a band of this layer"),
-    ("nirr - red", "did you mean 'nir'"),
-    ("nir +", "syntax error"),
-    ("'text'", "only numbers"),
-    ("sqrt", "must be called"),
-    ("where(nir, red, x=1)", "keyword arguments"),
-    ("nir @ red", "MatMult is not allowed"),
-])
+@pytest.mark.parametrize(
+    "text,why",
+    [
+        ("nir.__class__", "double underscores"),
+        ("nir.real", "Attribute is not allowed"),
+        ("__import__('os')", "double underscores"),
+        ("open('x')", "only these functions may be called"),
+        ("(lambda: 1)()", "only these functions"),
+        ("[nir for nir in red]", "not allowed"),
+        ("nir[0]", "Subscript is not allowed"),
+        ("swir - red", "'swir' is not a band of this layer"),
+        ("nirr - red", "did you mean 'nir'"),
+        ("nir +", "syntax error"),
+        ("'text'", "only numbers"),
+        ("sqrt", "must be called"),
+        ("where(nir, red, x=1)", "keyword arguments"),
+        ("nir @ red", "MatMult is not allowed"),
+    ],
+)
 def test_anything_beyond_arithmetic_is_refused(text, why):
     with pytest.raises(RecipeError, match=why):
         parse_expression(text, ["nir", "red"], key="layers.veg.expression")

@@ -61,7 +61,7 @@ class ArraySource:
     def read_block(self, window):
         self.reads[window] += 1
         r0, c0, h, w = window
-        return self.data[r0:r0 + h, c0:c0 + w]
+        return self.data[r0 : r0 + h, c0 : c0 + w]
 
     def to_values(self, stored):
         values = stored.astype(np.float64)
@@ -222,13 +222,21 @@ def _shapely_reallocation(light, zones, totals, units):
     values = np.zeros(len(units))
     for z, zone in enumerate(zones):
         lit = np.where(light > 0, light, 0.0)
-        cov = np.array([[cells(c, r, c + 1, r + 1).intersection(zone).area / PX**2
-                         for c in range(w)] for r in range(h)])
+        cov = np.array(
+            [
+                [cells(c, r, c + 1, r + 1).intersection(zone).area / PX**2 for c in range(w)]
+                for r in range(h)
+            ]
+        )
         factor = totals[z] / np.sum(cov * lit)
         for i, unit in enumerate(units):
             piece = unit.intersection(zone)
-            pc = np.array([[cells(c, r, c + 1, r + 1).intersection(piece).area / PX**2
-                            for c in range(w)] for r in range(h)])
+            pc = np.array(
+                [
+                    [cells(c, r, c + 1, r + 1).intersection(piece).area / PX**2 for c in range(w)]
+                    for r in range(h)
+                ]
+            )
             values[i] += factor * np.sum(pc * lit)
     return values
 
@@ -237,12 +245,15 @@ def test_matches_an_independent_shapely_computation():
     rng = np.random.default_rng(7)
     light = rng.gamma(1.5, 4.0, size=(8, 10))
     light[rng.random(light.shape) < 0.3] = 0.0
-    zones = [Polygon([(X0, Y0), (X0 + 430, Y0), (X0 + 610, Y0 - 800), (X0, Y0 - 800)]),
-             Polygon([(X0 + 430, Y0), (X0 + 1000, Y0), (X0 + 1000, Y0 - 800),
-                      (X0 + 610, Y0 - 800)])]
+    zones = [
+        Polygon([(X0, Y0), (X0 + 430, Y0), (X0 + 610, Y0 - 800), (X0, Y0 - 800)]),
+        Polygon([(X0 + 430, Y0), (X0 + 1000, Y0), (X0 + 1000, Y0 - 800), (X0 + 610, Y0 - 800)]),
+    ]
     totals = [1234.0, 567.0]
-    units = [Point(X0 + x, Y0 - y).buffer(r, quad_segs=16)
-             for x, y, r in [(250, 300, 180), (520, 420, 230), (800, 650, 120), (540, 120, 90)]]
+    units = [
+        Point(X0 + x, Y0 - y).buffer(r, quad_segs=16)
+        for x, y, r in [(250, 300, 180), (520, 420, 230), (800, 650, 120), (540, 120, 90)]
+    ]
     src = ArraySource(light, block=(4, 4))
     res = reallocate(src, zones, totals, units, threads=1)
     assert_allclose(res.values, _shapely_reallocation(light, zones, totals, units), rtol=1e-9)
@@ -385,8 +396,17 @@ def test_fit_equals_polyfit_and_linregress():
     sxx = np.sum((x - x.mean()) ** 2)
     assert_allclose(cal.residual_se, lr.stderr * np.sqrt(sxx), rtol=1e-10)
     assert cal.light_range == (light[:40].min(), light[:40].max())
-    assert set(cal.summary()) == {"a", "b", "r2", "rmse", "n", "smearing", "light_min",
-                                  "light_max", "level"}
+    assert set(cal.summary()) == {
+        "a",
+        "b",
+        "r2",
+        "rmse",
+        "n",
+        "smearing",
+        "light_min",
+        "light_max",
+        "level",
+    }
 
 
 def test_smearing_factor_is_duans_formula():
@@ -422,8 +442,9 @@ def test_prediction_interval_is_the_ols_prediction_interval():
     # error scipy reports: se_pred² = s² + intercept_stderr².
     _, lo1, hi1, _ = cal.predict([1.0])
     se0 = np.sqrt(s**2 + lr.intercept_stderr**2)
-    assert_allclose([lo1[0], hi1[0]], np.exp(lr.intercept + np.array([-1, 1]) * t * se0),
-                    rtol=1e-10)
+    assert_allclose(
+        [lo1[0], hi1[0]], np.exp(lr.intercept + np.array([-1, 1]) * t * se0), rtol=1e-10
+    )
 
 
 def test_unlit_units_are_left_out_and_get_no_prediction():

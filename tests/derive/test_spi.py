@@ -69,8 +69,9 @@ def test_spi_matches_an_independent_scipy_computation(months):
     for u in range(3):
         got = res[res["unit"] == u]
         expected = reference_spi(pd.Series(v[u], index=index), months, 1981, 2010)
-        assert_allclose(got["value"].to_numpy(), expected.to_numpy(), rtol=1e-8, atol=1e-8,
-                        equal_nan=True)
+        assert_allclose(
+            got["value"].to_numpy(), expected.to_numpy(), rtol=1e-8, atol=1e-8, equal_nan=True
+        )
         totals = pd.Series(v[u], index=index).rolling(months, min_periods=months).sum()
         assert_allclose(got["total"].to_numpy(), totals.to_numpy(), rtol=1e-12, equal_nan=True)
     assert (res["value"].notna() | res["qa"].map(len).gt(0)).all()  # every gap has a reason
@@ -111,14 +112,21 @@ def test_fit_gamma_equals_scipy_maximum_likelihood():
 def test_category_boundaries_are_half_open():
     # WMO-No. 1090 categories (from memory; see covextract.derive.spi.SPI_CATEGORIES).
     cases = {
-        2.0: "extremely wet", np.nextafter(2.0, 0): "very wet",
-        1.5: "very wet", np.nextafter(1.5, 0): "moderately wet",
-        1.0: "moderately wet", np.nextafter(1.0, 0): "near normal",
+        2.0: "extremely wet",
+        np.nextafter(2.0, 0): "very wet",
+        1.5: "very wet",
+        np.nextafter(1.5, 0): "moderately wet",
+        1.0: "moderately wet",
+        np.nextafter(1.0, 0): "near normal",
         0.0: "near normal",
-        np.nextafter(-1.0, 0): "near normal", -1.0: "moderately dry",
-        np.nextafter(-1.5, 0): "moderately dry", -1.5: "severely dry",
-        np.nextafter(-2.0, 0): "severely dry", -2.0: "extremely dry",
-        np.inf: "extremely wet", -np.inf: "extremely dry",
+        np.nextafter(-1.0, 0): "near normal",
+        -1.0: "moderately dry",
+        np.nextafter(-1.5, 0): "moderately dry",
+        -1.5: "severely dry",
+        np.nextafter(-2.0, 0): "severely dry",
+        -2.0: "extremely dry",
+        np.inf: "extremely wet",
+        -np.inf: "extremely dry",
     }
     got = spi_category(list(cases))
     assert got.tolist() == list(cases.values())
@@ -167,7 +175,7 @@ def test_spi_qa_codes():
 def test_short_baseline_per_unit_and_month():
     rng = np.random.default_rng(4)
     v = rain(rng, 2, 30)
-    v[1, 0:12 * 21:12] = np.nan  # unit 1: 21 of 30 Januaries missing
+    v[1, 0 : 12 * 21 : 12] = np.nan  # unit 1: 21 of 30 Januaries missing
     # The series holds all 30 baseline years (no warning); unit 1 lacks the values.
     res = spi(monthly_panel(v, first="1991-01"), months=1, baseline=(1991, 2020), min_years=10)
     jan1 = res[(res["unit"] == 1) & (res["start"].dt.month == 1)]

@@ -68,15 +68,15 @@ def test_window_three_months_lag_one_by_hand():
     for combine, expected in [("mean", 30.0), ("min", 20.0), ("max", 40.0)]:
         r = window_values(panel, [dt.date(2021, 5, 17)], months=3, lag_months=1, combine=combine)
         assert_allclose(r["value"][0], expected, rtol=0, atol=1e-12)
-    r = window_values(panel, ["2021-05-17"], months=3, lag_months=1, combine="count_above",
-                      threshold=20.0)
+    r = window_values(
+        panel, ["2021-05-17"], months=3, lag_months=1, combine="count_above", threshold=20.0
+    )
     assert_allclose(r["value"][0], 2.0, rtol=0, atol=1e-12)  # strictly above: 30 and 40
 
 
 def test_lag_zero_includes_the_visit_month_and_is_flagged():
     panel = monthly_panel([[10, 20, 30, 40, 50, 60]])
-    res = window_values(panel, ["2021-05-17", "2021-05-31"], units=[0, 0], months=2,
-                        lag_months=0)
+    res = window_values(panel, ["2021-05-17", "2021-05-31"], units=[0, 0], months=2, lag_months=0)
     assert_allclose(res["value"], [90.0, 90.0], rtol=0, atol=1e-12)
     assert res["qa"][0] == ("after_visit",)  # 18-31 May are after the visit
     assert res["qa"][1] == ()  # the visit is on the month's last day
@@ -84,10 +84,8 @@ def test_lag_zero_includes_the_visit_month_and_is_flagged():
 
 def test_missing_dates_outside_series_and_gaps():
     panel = monthly_panel([[10, np.nan, 30, 40, 50, 60]])
-    dates = [None, "not a date", np.nan, 20210517, pd.NaT, "2021-02-10", "2021-04-10",
-             "2021-07-15"]
-    res = window_values(panel, dates, units=[0] * len(dates), months=2, lag_months=1,
-                        combine="sum")
+    dates = [None, "not a date", np.nan, 20210517, pd.NaT, "2021-02-10", "2021-04-10", "2021-07-15"]
+    res = window_values(panel, dates, units=[0] * len(dates), months=2, lag_months=1, combine="sum")
     for i in range(5):
         assert res["qa"][i] == ("no_date",)
         assert np.isnan(res["value"][i])
@@ -109,8 +107,14 @@ def test_missing_dates_outside_series_and_gaps():
 def test_absent_period_and_absent_unit_are_gaps():
     panel = monthly_panel([[10, 20, 30, 40]])
     panel = panel[panel["start"] != pd.Timestamp("2021-02-01")]  # February has no file
-    res = window_values(panel, ["2021-03-20", "2021-03-20", "2021-05-02"], units=[0, 7, 0],
-                        months=2, lag_months=0, combine="max")
+    res = window_values(
+        panel,
+        ["2021-03-20", "2021-03-20", "2021-05-02"],
+        units=[0, 7, 0],
+        months=2,
+        lag_months=0,
+        combine="max",
+    )
     assert res["qa"][0] == ("window_gap", "after_visit")
     assert_allclose(res["value"][0], 30.0, rtol=0, atol=1e-12)
     assert res["qa"][1] == ("window_gap", "after_visit")  # unit 7 has no rows at all
@@ -120,12 +124,14 @@ def test_absent_period_and_absent_unit_are_gaps():
 
 def test_composites_count_by_their_overlap_by_hand():
     # Two 16-day composites: 1-16 Jan (value 16) and 17 Jan - 1 Feb (value 32).
-    panel = pd.DataFrame({
-        "unit": [0, 0],
-        "start": pd.to_datetime(["2021-01-01", "2021-01-17"]),
-        "end": pd.to_datetime(["2021-01-16", "2021-02-01"]),
-        "value": [16.0, 32.0],
-    })
+    panel = pd.DataFrame(
+        {
+            "unit": [0, 0],
+            "start": pd.to_datetime(["2021-01-01", "2021-01-17"]),
+            "end": pd.to_datetime(["2021-01-16", "2021-02-01"]),
+            "value": [16.0, 32.0],
+        }
+    )
     # 10 days ending on the visit day, 20 Jan: 11-16 Jan (6/16 of the first), 17-20 Jan (4/16).
     res = window_values(panel, ["2021-01-20"], days=10, lag_days=0, combine="sum")
     assert res["window_start"][0] == pd.Timestamp("2021-01-11")
@@ -133,8 +139,9 @@ def test_composites_count_by_their_overlap_by_hand():
     assert res["qa"][0] == ("after_visit",)  # the second composite runs to 1 Feb
     res = window_values(panel, ["2021-01-20"], days=10, lag_days=0, combine="mean")
     assert_allclose(res["value"][0], (6 + 8) / (10 / 16), rtol=0, atol=1e-12)
-    res = window_values(panel, ["2021-01-20"], days=10, lag_days=0, combine="count_above",
-                        threshold=20)
+    res = window_values(
+        panel, ["2021-01-20"], days=10, lag_days=0, combine="count_above", threshold=20
+    )
     assert_allclose(res["value"][0], 4 / 16, rtol=0, atol=1e-12)
     # Lag 5: 1-10 Jan, inside the first composite only; no day after the visit is used.
     res = window_values(panel, ["2021-01-15"], days=10, lag_days=5, combine="sum")
@@ -152,15 +159,27 @@ def _expand_days(panel):
     rows = []
     for r in panel.itertuples(index=False):
         days = pd.date_range(r.start, r.end, freq="D")
-        rows.append(pd.DataFrame({"unit": r.unit, "start": r.start, "day": days,
-                                  "value": r.value, "share": 1.0 / len(days)}))
+        rows.append(
+            pd.DataFrame(
+                {
+                    "unit": r.unit,
+                    "start": r.start,
+                    "day": days,
+                    "value": r.value,
+                    "share": 1.0 / len(days),
+                }
+            )
+        )
     return pd.concat(rows, ignore_index=True)
 
 
 def _brute_window(panel, daily, date, unit, months, lag_months, days, lag_days, threshold):
     """One record's value under every combine, and its QA codes, day by day."""
-    date = pd.to_datetime(date, errors="coerce", format="ISO8601") if isinstance(date, str) \
+    date = (
+        pd.to_datetime(date, errors="coerce", format="ISO8601")
+        if isinstance(date, str)
         else (pd.Timestamp(date) if isinstance(date, (dt.date, pd.Timestamp)) else pd.NaT)
+    )
     if pd.isna(date):
         return dict.fromkeys(COMBINES, np.nan), {"no_date"}
     if months is not None:
@@ -179,8 +198,12 @@ def _brute_window(panel, daily, date, unit, months, lag_months, days, lag_days, 
     outside = ws < span0 or we > span1
     if outside:
         codes.add("window_outside_series")
-    inside = daily[(daily["unit"] == unit) & (daily["day"] >= ws) & (daily["day"] <= we)
-                   & daily["value"].notna()]
+    inside = daily[
+        (daily["unit"] == unit)
+        & (daily["day"] >= ws)
+        & (daily["day"] <= we)
+        & daily["value"].notna()
+    ]
     needed = set(pd.date_range(max(ws, span0), min(we, span1), freq="D"))
     gap = bool(needed - set(inside["day"]))
     if gap:
@@ -211,17 +234,33 @@ def _random_records(rng, n, first, last, n_units):
 def _check_against_brute_force(panel, dates, units, threshold, **window):
     daily = _expand_days(panel)
     seen = set()
-    results = {c: window_values(panel, dates, units=units, combine=c, threshold=threshold,
-                                **window) for c in COMBINES}
+    results = {
+        c: window_values(panel, dates, units=units, combine=c, threshold=threshold, **window)
+        for c in COMBINES
+    }
     for i in range(len(dates)):
         expected, codes = _brute_window(
-            panel, daily, dates[i], units[i], window.get("months"), window.get("lag_months", 0),
-            window.get("days"), window.get("lag_days", 0), threshold)
+            panel,
+            daily,
+            dates[i],
+            units[i],
+            window.get("months"),
+            window.get("lag_months", 0),
+            window.get("days"),
+            window.get("lag_days", 0),
+            threshold,
+        )
         seen |= codes
         for c in COMBINES:
             assert set(results[c]["qa"][i]) == codes, (c, i, dates[i], window)
-            assert_allclose(results[c]["value"][i], expected[c], rtol=1e-12, atol=1e-12,
-                            equal_nan=True, err_msg=f"{c} {i} {dates[i]} {window}")
+            assert_allclose(
+                results[c]["value"][i],
+                expected[c],
+                rtol=1e-12,
+                atol=1e-12,
+                equal_nan=True,
+                err_msg=f"{c} {i} {dates[i]} {window}",
+            )
     return seen
 
 
@@ -245,10 +284,14 @@ def test_day_windows_on_composites_match_brute_force(days, lag):
     ends = starts + pd.Timedelta(days=15)
     values = rng.uniform(0, 50, size=(3, len(starts)))
     values[0, 4] = np.nan
-    panel = pd.DataFrame({
-        "unit": np.repeat(np.arange(3), len(starts)),
-        "start": np.tile(starts, 3), "end": np.tile(ends, 3), "value": values.reshape(-1),
-    })
+    panel = pd.DataFrame(
+        {
+            "unit": np.repeat(np.arange(3), len(starts)),
+            "start": np.tile(starts, 3),
+            "end": np.tile(ends, 3),
+            "value": values.reshape(-1),
+        }
+    )
     dates, units = _random_records(rng, 20, "2021-01-05", "2021-07-20", 3)
     seen = _check_against_brute_force(panel, dates, units, 25.0, days=days, lag_days=lag)
     assert seen >= {"no_date", "window_gap", "after_visit"}
@@ -259,8 +302,14 @@ def test_month_windows_on_a_daily_series_match_brute_force():
     days = pd.date_range("2021-01-01", "2021-05-31", freq="D")
     values = rng.exponential(3.0, size=(2, len(days)))
     values[1, 40] = np.nan
-    panel = pd.DataFrame({"unit": np.repeat([0, 1], len(days)), "start": np.tile(days, 2),
-                          "end": np.tile(days, 2), "value": values.reshape(-1)})
+    panel = pd.DataFrame(
+        {
+            "unit": np.repeat([0, 1], len(days)),
+            "start": np.tile(days, 2),
+            "end": np.tile(days, 2),
+            "value": values.reshape(-1),
+        }
+    )
     dates = ["2021-03-03", "2021-04-30", "2021-05-31", "2021-02-14"]
     units = [0, 1, 0, 1]
     _check_against_brute_force(panel, dates, units, 4.0, months=2, lag_months=1)
@@ -295,14 +344,28 @@ def test_bad_panels_are_refused_with_the_place():
         window_values(good.drop(columns="value"), ["2021-02-01"], months=1)
     bad = good.astype({"start": object})
     bad.loc[1, "start"] = "someday"
-    with pytest.raises(TableError, match=r"'start' column has missing or unreadable dates in "
-                       r"rows 1 \(counted from 0\), e.g. 'someday'"):
+    with pytest.raises(
+        TableError,
+        match=r"'start' column has missing or unreadable dates in "
+        r"rows 1 \(counted from 0\), e.g. 'someday'",
+    ):
         collapse(bad)
-    overlap = pd.concat([good, pd.DataFrame({"unit": [0], "start": [pd.Timestamp("2021-01-15")],
-                                             "end": [pd.Timestamp("2021-02-14")],
-                                             "value": [1.0]})])
-    with pytest.raises(TableError,
-                       match="2021-01-01..2021-01-31 and 2021-01-15..2021-02-14 overlap"):
+    overlap = pd.concat(
+        [
+            good,
+            pd.DataFrame(
+                {
+                    "unit": [0],
+                    "start": [pd.Timestamp("2021-01-15")],
+                    "end": [pd.Timestamp("2021-02-14")],
+                    "value": [1.0],
+                }
+            ),
+        ]
+    )
+    with pytest.raises(
+        TableError, match="2021-01-01..2021-01-31 and 2021-01-15..2021-02-14 overlap"
+    ):
         collapse(overlap)
     dup = pd.concat([good, good.iloc[[2]]])
     with pytest.raises(TableError, match="unit 0 has more than one row for the period 2021-03-01"):
@@ -337,12 +400,14 @@ def test_collapse_months_into_years_by_hand():
 
 def test_collapse_composites_across_new_year_by_hand():
     # 24 Dec 2021 - 8 Jan 2022 (value 32): 8 days in each year.
-    panel = pd.DataFrame({
-        "unit": [0, 0, 0],
-        "start": pd.to_datetime(["2021-12-08", "2021-12-24", "2022-01-09"]),
-        "end": pd.to_datetime(["2021-12-23", "2022-01-08", "2022-01-24"]),
-        "value": [16.0, 32.0, 48.0],
-    })
+    panel = pd.DataFrame(
+        {
+            "unit": [0, 0, 0],
+            "start": pd.to_datetime(["2021-12-08", "2021-12-24", "2022-01-09"]),
+            "end": pd.to_datetime(["2021-12-23", "2022-01-08", "2022-01-24"]),
+            "value": [16.0, 32.0, 48.0],
+        }
+    )
     res = collapse(panel, into="month", how="sum", min_coverage=0.2)
     # December: all of the first (16) and half of the second (16); January: 16 + 48.
     assert_allclose(res["value"], [32.0, 64.0], rtol=0, atol=1e-12)
@@ -402,10 +467,8 @@ def test_trend_matches_scipy_and_the_mann_kendall_formula():
         assert res["n_years"][u] == ok.sum()
         assert res["first_year"][u] == x[0] and res["last_year"][u] == x[-1]
         # scipy.stats.theilslopes (Sen 1968) and scipy.stats.linregress as references.
-        assert_allclose(res["sen_slope"][u], stats.theilslopes(yy, x).slope, rtol=1e-12,
-                        atol=1e-12)
-        assert_allclose(res["ols_slope"][u], stats.linregress(x, yy).slope, rtol=1e-10,
-                        atol=1e-12)
+        assert_allclose(res["sen_slope"][u], stats.theilslopes(yy, x).slope, rtol=1e-12, atol=1e-12)
+        assert_allclose(res["ols_slope"][u], stats.linregress(x, yy).slope, rtol=1e-10, atol=1e-12)
         s, _var, z, p = _mann_kendall_formula(yy)
         assert res["mk_s"][u] == s
         assert_allclose([res["mk_z"][u], res["mk_p"][u]], [z, p], rtol=1e-12, atol=1e-15)
@@ -431,10 +494,12 @@ def test_mann_kendall_against_scipy_kendalltau():
 
 
 def test_trend_needs_enough_years_and_handles_constant_series():
-    y = np.array([
-        [1.0, 2.0, np.nan, np.nan, np.nan, np.nan, 4.0, 5.0],  # 4 valid years
-        [7.0, 7.0, 7.0, 7.0, 7.0, 7.0, 7.0, 7.0],
-    ])
+    y = np.array(
+        [
+            [1.0, 2.0, np.nan, np.nan, np.nan, np.nan, 4.0, 5.0],  # 4 valid years
+            [7.0, 7.0, 7.0, 7.0, 7.0, 7.0, 7.0, 7.0],
+        ]
+    )
     res = trend(annual_panel(y, 2010), min_years=5)
     assert res["qa"][0] == ("too_few_years",)
     assert np.isnan(res[["ols_slope", "sen_slope", "mk_s", "mk_p"]].to_numpy()[0]).all()
@@ -479,8 +544,12 @@ def test_anomalies_by_hand():
     v[0, 40] = np.nan  # May 2004
     res = anomalies(monthly_panel(v, first="2001-01"), baseline=(2001, 2003), min_years=3)
     jan_2004 = res.iloc[36]
-    assert_allclose(jan_2004[["normal", "anomaly", "percent_of_normal", "zscore"]].to_numpy(
-        dtype=float), [20.0, 15.0, 175.0, 1.5], rtol=1e-15, atol=0)
+    assert_allclose(
+        jan_2004[["normal", "anomaly", "percent_of_normal", "zscore"]].to_numpy(dtype=float),
+        [20.0, 15.0, 175.0, 1.5],
+        rtol=1e-15,
+        atol=0,
+    )
     assert jan_2004["qa"] == ()
     feb = res.iloc[37]
     assert np.isnan(feb["percent_of_normal"]) and feb["qa"] == ("zero_normal", "zero_spread")

@@ -18,7 +18,9 @@ def grid():
 
 
 def test_round_trip_is_exact(tmp_path, grid):
-    ws = build_weights(np.array([box(1.3, 1.2, 9.7, 14.1), box(5, 5, 19.5, 7.25)], dtype=object), grid, "overlap")
+    ws = build_weights(
+        np.array([box(1.3, 1.2, 9.7, 14.1), box(5, 5, 19.5, 7.25)], dtype=object), grid, "overlap"
+    )
     cache = WeightCache(tmp_path)
     key = weights_key(grid.fingerprint, "units-a", "overlap")
     assert cache.get(key) is None

@@ -19,9 +19,21 @@ T = Affine(10.0, 0, 300_000.0, 0, -10.0, 6_000_000.0)
 
 def _write(path, data, transform=T, nodata=None):
     h, w = data.shape
-    with rasterio.open(path, "w", driver="GTiff", width=w, height=h, count=1, dtype=data.dtype,
-                       crs="EPSG:32633", transform=transform, nodata=nodata, tiled=True,
-                       blockxsize=16, blockysize=16) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=w,
+        height=h,
+        count=1,
+        dtype=data.dtype,
+        crs="EPSG:32633",
+        transform=transform,
+        nodata=nodata,
+        tiled=True,
+        blockxsize=16,
+        blockysize=16,
+    ) as ds:
         ds.write(data, 1)
     return path
 
@@ -46,7 +58,9 @@ def _shapely_shares(data, poly, nodata=None):
 @pytest.fixture
 def cover(tmp_path):
     rng = np.random.default_rng(11)
-    data = rng.choice([1, 2, 3, 4, 5, 9], size=(40, 40), p=[0.3, 0.25, 0.15, 0.1, 0.1, 0.1]).astype(np.uint8)
+    data = rng.choice([1, 2, 3, 4, 5, 9], size=(40, 40), p=[0.3, 0.25, 0.15, 0.1, 0.1, 0.1]).astype(
+        np.uint8
+    )
     data[:3, :] = 255
     return _write(tmp_path / "cover.tif", data, nodata=255), data
 
@@ -55,17 +69,27 @@ def test_shares_equal_per_pixel_reference(cover):
     path, data = cover
     src = open_layer(path)
     table = ClassTable.from_mapping(CLASSES)
-    polys = [box(300_013, 5_999_650, 300_287, 5_999_981), box(300_100.5, 5_999_700.5, 300_399, 5_999_999)]
-    res = zonal(src, np.array(polys, dtype=object),
-                ["share", "dominant", "classes_present", "shannon", "valid_share"],
-                categorical={"table": table, "groups": GROUPS}, area_weighting="off")
+    polys = [
+        box(300_013, 5_999_650, 300_287, 5_999_981),
+        box(300_100.5, 5_999_700.5, 300_399, 5_999_999),
+    ]
+    res = zonal(
+        src,
+        np.array(polys, dtype=object),
+        ["share", "dominant", "classes_present", "shannon", "valid_share"],
+        categorical={"table": table, "groups": GROUPS},
+        area_weighting="off",
+    )
     for i, poly in enumerate(polys):
         ref = _shapely_shares(data, poly, nodata=255)
         for code, label in CLASSES.items():
             assert_allclose(res.values[f"share_{label}"][i], ref.get(code, 0.0), atol=1e-9)
         assert_allclose(res.values["share_other"][i], ref.get(9, 0.0), atol=1e-9)
         assert_allclose(res.values["share_green"][i], ref.get(2, 0) + ref.get(3, 0), atol=1e-9)
-        total = sum(res.values[f"share_{lbl}"][i] for lbl in CLASSES.values()) + res.values["share_other"][i]
+        total = (
+            sum(res.values[f"share_{lbl}"][i] for lbl in CLASSES.values())
+            + res.values["share_other"][i]
+        )
         assert_allclose(total, 1.0, atol=1e-12)
         # Shannon (1948): H = -sum p ln p
         p = np.array([v for v in ref.values() if v > 0])
@@ -81,8 +105,12 @@ def test_shares_equal_per_pixel_reference(cover):
 def test_float_codes_and_ties(tmp_path):
     data = np.array([[1.0, 1.0], [2.0, 2.0]], dtype=np.float32)
     path = _write(tmp_path / "f.tif", data, transform=Affine(1, 0, 0, 0, -1, 2))
-    res = zonal(open_layer(path), np.array([box(0, 0, 2, 2)], dtype=object), ["share", "dominant"],
-                categorical={"table": ClassTable.from_mapping({1: "a", 2: "b"}), "groups": {}})
+    res = zonal(
+        open_layer(path),
+        np.array([box(0, 0, 2, 2)], dtype=object),
+        ["share", "dominant"],
+        categorical={"table": ClassTable.from_mapping({1: "a", 2: "b"}), "groups": {}},
+    )
     assert_allclose([res.values["share_a"][0], res.values["share_b"][0]], [0.5, 0.5])
     assert res.values["dominant"][0] == "a"  # tie: the lowest code wins
 
@@ -99,9 +127,17 @@ def test_transition_with_zero_net_change(tmp_path):
     p_early = _write(tmp_path / "early.tif", earlier)
     unit = np.array([box(300_000, 5_999_900, 300_100, 6_000_000)], dtype=object)
     table = ClassTable.from_mapping({1: "cropland", 2: "forest", 4: "built"})
-    res = zonal(open_layer(p_late), unit, ["transition", "net_change", "share"],
-                categorical={"table": table, "groups": {}, "earlier": open_layer(p_early),
-                             "pairs": [("forest", "cropland"), ("cropland", "forest"), ("any", "built")]})
+    res = zonal(
+        open_layer(p_late),
+        unit,
+        ["transition", "net_change", "share"],
+        categorical={
+            "table": table,
+            "groups": {},
+            "earlier": open_layer(p_early),
+            "pairs": [("forest", "cropland"), ("cropland", "forest"), ("any", "built")],
+        },
+    )
     v = res.values
     assert_allclose(v["transition_forest_to_cropland"], [0.1])
     assert_allclose(v["transition_cropland_to_forest"], [0.1])
@@ -113,9 +149,20 @@ def test_transition_with_zero_net_change(tmp_path):
 
 def test_transition_layers_on_different_grids_are_refused(tmp_path):
     a = _write(tmp_path / "a.tif", np.ones((10, 10), np.uint8))
-    b = _write(tmp_path / "b.tif", np.ones((10, 10), np.uint8), transform=Affine(20.0, 0, 300_000, 0, -20.0, 6_000_000))
+    b = _write(
+        tmp_path / "b.tif",
+        np.ones((10, 10), np.uint8),
+        transform=Affine(20.0, 0, 300_000, 0, -20.0, 6_000_000),
+    )
     unit = np.array([box(300_000, 5_999_950, 300_050, 6_000_000)], dtype=object)
     with pytest.raises(RasterError, match="not on the same grid.*10x10.*Warp"):
-        zonal(open_layer(a), unit, ["transition"],
-              categorical={"table": ClassTable.from_mapping({1: "x"}), "earlier": open_layer(b),
-                           "pairs": [("x", "x")]})
+        zonal(
+            open_layer(a),
+            unit,
+            ["transition"],
+            categorical={
+                "table": ClassTable.from_mapping({1: "x"}),
+                "earlier": open_layer(b),
+                "pairs": [("x", "x")],
+            },
+        )

@@ -90,13 +90,15 @@ def test_utm_area_is_constant_ground_area():
     assert_allclose(areas[0], 10_000.0, rtol=2e-3)
 
 
-@pytest.mark.parametrize("shape,block", [((100, 130), (32, 32)), ((70, 500), (1, 500)), ((5, 5), (256, 256))])
+@pytest.mark.parametrize(
+    "shape,block", [((100, 130), (32, 32)), ((70, 500), (1, 500)), ((5, 5), (256, 256))]
+)
 def test_block_windows_partition_the_grid(shape, block):
     h, w = shape
     grid = Grid(Affine(1, 0, 0, 0, -1, 0), w, h, CRS.from_epsg(32631), block)
     seen = np.zeros(shape, dtype=int)
     for r0, c0, bh, bw in grid.block_windows():
-        seen[r0:r0 + bh, c0:c0 + bw] += 1
+        seen[r0 : r0 + bh, c0 : c0 + bw] += 1
     assert (seen == 1).all()
 
 

@@ -14,7 +14,10 @@ from covextract.errors import SchedulerError
 from covextract.io.rasters import open_layer
 from covextract.stats.names import parse_stat
 
-STATS = [parse_stat(s) for s in ("count", "valid_share", "sum", "mean", "std", "min", "max", "q90", "median")]
+STATS = [
+    parse_stat(s)
+    for s in ("count", "valid_share", "sum", "mean", "std", "min", "max", "q90", "median")
+]
 
 
 @pytest.fixture(scope="module")
@@ -23,13 +26,27 @@ def scene(tmp_path_factory):
     data = (300 + rng.normal(0, 3, size=(256, 256))).astype(np.float32)
     data[rng.uniform(size=data.shape) < 0.05] = np.nan
     path = tmp_path_factory.mktemp("par") / "t.tif"
-    with rasterio.open(path, "w", driver="GTiff", width=256, height=256, count=1, dtype="float32",
-                       crs="EPSG:4326", transform=Affine(0.001, 0, 10, 0, -0.001, 5), nodata=np.nan,
-                       tiled=True, blockxsize=32, blockysize=32) as ds:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        width=256,
+        height=256,
+        count=1,
+        dtype="float32",
+        crs="EPSG:4326",
+        transform=Affine(0.001, 0, 10, 0, -0.001, 5),
+        nodata=np.nan,
+        tiled=True,
+        blockxsize=32,
+        blockysize=32,
+    ) as ds:
         ds.write(data, 1)
     centers = rng.uniform([10.02, 4.77], [10.23, 4.98], size=(60, 2))
-    geoms = np.array([Point(x, y).buffer(rng.uniform(0.003, 0.02), quad_segs=16) for x, y in centers],
-                     dtype=object)
+    geoms = np.array(
+        [Point(x, y).buffer(rng.uniform(0.003, 0.02), quad_segs=16) for x, y in centers],
+        dtype=object,
+    )
     return path, geoms
 
 
@@ -50,8 +67,9 @@ def test_distributed_cluster_runs_blocks_on_both_workers(scene):
     src = open_layer(path)
     ws = build_weights(geoms, src.grid, "overlap")
     local = zonal(src, geoms, STATS, weights=ws, threads=1)
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  host="127.0.0.1", dashboard_address=None) as cluster:
+    with distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+    ) as cluster:
         client = connect(cluster.scheduler_address)
         try:
             remote = zonal(src, geoms, STATS, weights=ws, client=client)
@@ -66,15 +84,23 @@ def test_distributed_cluster_runs_blocks_on_both_workers(scene):
 
 def test_unreachable_scheduler_fails_fast_with_clear_error():
     t0 = time.monotonic()
-    with pytest.raises(SchedulerError, match="cannot reach the dask scheduler at tcp://127.0.0.1:9"):
+    with pytest.raises(
+        SchedulerError, match="cannot reach the dask scheduler at tcp://127.0.0.1:9"
+    ):
         connect("tcp://127.0.0.1:9", timeout=2)
     assert time.monotonic() - t0 < 10
 
 
-@pytest.mark.parametrize("address,local", [
-    ("tcp://127.0.0.1:8786", True), ("tcp://localhost:8786", True), ("127.0.0.5:1", True),
-    ("tcp://10.20.30.40:8786", False), ("tcp://cluster.example.org:8786", False),
-])
+@pytest.mark.parametrize(
+    "address,local",
+    [
+        ("tcp://127.0.0.1:8786", True),
+        ("tcp://localhost:8786", True),
+        ("127.0.0.5:1", True),
+        ("tcp://10.20.30.40:8786", False),
+        ("tcp://cluster.example.org:8786", False),
+    ],
+)
 def test_remote_schedulers_are_told_apart(address, local):
     # no connection is attempted: only the address is inspected
     assert is_local_address(address) is local

@@ -7,7 +7,21 @@ from covextract.engine.reduce import Accumulator, reduce_block
 from covextract.stats.continuous import finalize
 from covextract.stats.names import parse_stat
 
-STATS = [parse_stat(s) for s in ("count", "sum", "mean", "std", "min", "max", "density_total", "area_km2", "area_above", "share_above")]
+STATS = [
+    parse_stat(s)
+    for s in (
+        "count",
+        "sum",
+        "mean",
+        "std",
+        "min",
+        "max",
+        "density_total",
+        "area_km2",
+        "area_above",
+        "share_above",
+    )
+]
 
 
 def _entries(rng, n_units, n_pix):
@@ -22,19 +36,33 @@ def test_blocks_merged_equal_one_block_and_numpy():
     rng = np.random.default_rng(3)
     n_units, n_pix = 6, 400
     unit, pix, cov = _entries(rng, n_units, n_pix)
-    values = 300.0 + rng.normal(0, 0.01, size=n_pix)  # kelvin-like: raw sums of squares would cancel
+    values = 300.0 + rng.normal(
+        0, 0.01, size=n_pix
+    )  # kelvin-like: raw sums of squares would cancel
     valid = rng.uniform(size=n_pix) > 0.2
     areas = rng.uniform(0.9e4, 1.1e4, size=unit.size)
 
     whole = Accumulator(n_units, (300.0,))
-    whole.merge(reduce_block(unit, pix, cov, values, valid, areas, weighting=True, thresholds=(300.0,)))
+    whole.merge(
+        reduce_block(unit, pix, cov, values, valid, areas, weighting=True, thresholds=(300.0,))
+    )
 
     split = Accumulator(n_units, (300.0,))
     cuts = [0, 100, 400, 650, unit.size]
-    for s, e in zip(cuts[:-1], cuts[1:]):
+    for s, e in zip(cuts[:-1], cuts[1:], strict=True):
         order = np.argsort(unit[s:e], kind="stable")
-        split.merge(reduce_block(unit[s:e][order], pix[s:e][order], cov[s:e][order], values, valid,
-                                 areas[s:e][order], weighting=True, thresholds=(300.0,)))
+        split.merge(
+            reduce_block(
+                unit[s:e][order],
+                pix[s:e][order],
+                cov[s:e][order],
+                values,
+                valid,
+                areas[s:e][order],
+                weighting=True,
+                thresholds=(300.0,),
+            )
+        )
 
     a = finalize(whole, STATS, offgrid_w=np.zeros(n_units), threshold=300.0)
     b = finalize(split, STATS, offgrid_w=np.zeros(n_units), threshold=300.0)
@@ -66,8 +94,11 @@ def test_unit_without_valid_pixels_is_missing_not_zero():
     valid = np.array([False, False, True])
     acc = Accumulator(3)
     acc.merge(reduce_block(unit, pix, cov, values, valid, np.ones(3), weighting=False))
-    out = finalize(acc, [parse_stat(s) for s in ("count", "valid_share", "sum", "mean", "min")],
-                   offgrid_w=np.zeros(3))
+    out = finalize(
+        acc,
+        [parse_stat(s) for s in ("count", "valid_share", "sum", "mean", "min")],
+        offgrid_w=np.zeros(3),
+    )
     assert out["count"].tolist() == [0, 1, 0]
     assert out["valid_share"].tolist() == [0.0, 1.0, 0.0]
     for k in ("sum", "mean", "min"):
@@ -78,7 +109,16 @@ def test_unit_without_valid_pixels_is_missing_not_zero():
 def test_offgrid_part_counts_as_invalid():
     unit = np.zeros(2, dtype=np.int32)
     acc = Accumulator(1)
-    acc.merge(reduce_block(unit, np.array([0, 1], np.int32), np.ones(2, np.float32),
-                           np.array([5.0, 7.0]), np.ones(2, bool), np.ones(2), weighting=False))
+    acc.merge(
+        reduce_block(
+            unit,
+            np.array([0, 1], np.int32),
+            np.ones(2, np.float32),
+            np.array([5.0, 7.0]),
+            np.ones(2, bool),
+            np.ones(2),
+            weighting=False,
+        )
+    )
     out = finalize(acc, [parse_stat("valid_share")], offgrid_w=np.array([2.0]))
     assert_allclose(out["valid_share"], [0.5])

@@ -18,8 +18,19 @@ REF_STATS = ["count", "sum", "mean", "min", "max", "median"]
 def _write(path, data, transform, crs="EPSG:32631", nodata=None, block=16):
     h, w = data.shape
     with rasterio.open(
-        path, "w", driver="GTiff", width=w, height=h, count=1, dtype=data.dtype, crs=crs,
-        transform=transform, nodata=nodata, tiled=True, blockxsize=block, blockysize=block,
+        path,
+        "w",
+        driver="GTiff",
+        width=w,
+        height=h,
+        count=1,
+        dtype=data.dtype,
+        crs=crs,
+        transform=transform,
+        nodata=nodata,
+        tiled=True,
+        blockxsize=block,
+        blockysize=block,
     ) as ds:
         ds.write(data, 1)
     return path
@@ -58,8 +69,13 @@ def test_center_and_touched_equal_rasterstats(scene, rule, all_touched):
 
     path, polys = scene
     src = open_layer(path)
-    res = zonal(src, np.array(polys, dtype=object), [parse_stat(s) for s in REF_STATS],
-                rule=rule, area_weighting="off")
+    res = zonal(
+        src,
+        np.array(polys, dtype=object),
+        [parse_stat(s) for s in REF_STATS],
+        rule=rule,
+        area_weighting="off",
+    )
     ref = zonal_stats(polys, str(path), stats=REF_STATS, all_touched=all_touched, nodata=-9999)
     for i, r in enumerate(ref):
         assert res.values["count"][i] == r["count"], i
@@ -77,8 +93,13 @@ def test_overlap_on_pixel_aligned_squares_equals_hand_computation(tmp_path):
     t = Affine(1.0, 0, 0.0, 0, -1.0, 6.0)
     src = open_layer(_write(tmp_path / "a.tif", data, t))
     squares = np.array([box(1, 3, 3, 5), box(1.5, 3, 3.5, 5)], dtype=object)
-    res = zonal(src, squares, [parse_stat(s) for s in ("count", "sum", "mean", "area_km2")],
-                rule="overlap", area_weighting="off")
+    res = zonal(
+        src,
+        squares,
+        [parse_stat(s) for s in ("count", "sum", "mean", "area_km2")],
+        rule="overlap",
+        area_weighting="off",
+    )
     # rows 1-2, cols 1-2 -> values 7, 8, 13, 14
     assert res.values["count"][0] == 4
     assert_allclose(res.values["sum"][0], 7 + 8 + 13 + 14)
@@ -110,8 +131,11 @@ def test_all_nodata_unit_is_missing_with_reason(tmp_path):
     data = np.full((6, 6), -1.0, dtype=np.float32)
     data[:, 3:] = 5.0
     src = open_layer(_write(tmp_path / "c.tif", data, Affine(1.0, 0, 0, 0, -1.0, 6.0), nodata=-1.0))
-    res = zonal(src, np.array([box(0, 0, 3, 6), box(2, 0, 6, 6)], dtype=object),
-                [parse_stat(s) for s in ("count", "valid_share", "mean")])
+    res = zonal(
+        src,
+        np.array([box(0, 0, 3, 6), box(2, 0, 6, 6)], dtype=object),
+        [parse_stat(s) for s in ("count", "valid_share", "mean")],
+    )
     assert res.values["count"][0] == 0 and np.isnan(res.values["mean"][0])
     assert res.qa[0] == ["no_valid_pixel"]
     assert_allclose(res.values["valid_share"][1], 0.75)
@@ -133,8 +157,12 @@ def test_scale_offset_and_nodata_applied_before_statistics(tmp_path):
     data = np.array([[5000, 7000], [-3000, 9000]], dtype=np.int16)
     path = _write(tmp_path / "e.tif", data, Affine(1.0, 0, 0, 0, -1.0, 2.0), block=16)
     src = open_layer(path, scale=0.0001, nodata=-3000)
-    res = zonal(src, np.array([box(0, 0, 2, 2)], dtype=object),
-                [parse_stat(s) for s in ("mean", "min", "max", "valid_share")], area_weighting="off")
+    res = zonal(
+        src,
+        np.array([box(0, 0, 2, 2)], dtype=object),
+        [parse_stat(s) for s in ("mean", "min", "max", "valid_share")],
+        area_weighting="off",
+    )
     assert_allclose(res.values["mean"], [0.7])
     assert_allclose(res.values["min"], [0.5])
     assert_allclose(res.values["max"], [0.9])
@@ -164,9 +192,7 @@ def test_buffer_area_on_grid_close_to_circle(tmp_path):
 
     for lat in (0.0, 60.0):
         res_deg = 0.002
-        n = 100
-        t = Affine(res_deg, 0, 10.0 - n * res_deg / 2, 0, -res_deg, lat + n * res_deg / 2 * 1.0)
-        h = int(n * 1.2) if lat else n
+        # 300 x 100 pixels of 0.002 deg around the point: the whole buffer is on the grid
         t = Affine(res_deg, 0, 10.0 - 0.3, 0, -res_deg, lat + 0.1)
         data = np.ones((100, 300), dtype=np.float32)
         src = open_layer(_write(tmp_path / f"g{int(lat)}.tif", data, t, crs="EPSG:4326", block=64))
@@ -196,7 +222,11 @@ def test_each_block_read_once_per_pass(tmp_path):
     assert len(reads) == len(set(reads)) == res.blocks_read
     # blocks whose interior meets a unit, worked out from the geometry
     expected = {
-        (r0, c0) for r0 in range(0, 64, 16) for c0 in range(0, 64, 16)
-        if any(shapely.area(box(c0, 64 - r0 - 16, c0 + 16, 64 - r0).intersection(p)) > 0 for p in polys)
+        (r0, c0)
+        for r0 in range(0, 64, 16)
+        for c0 in range(0, 64, 16)
+        if any(
+            shapely.area(box(c0, 64 - r0 - 16, c0 + 16, 64 - r0).intersection(p)) > 0 for p in polys
+        )
     }
     assert {(w[0], w[1]) for w in reads} == expected

@@ -20,8 +20,8 @@ from covextract.engine.zonal import QA_CODES as ENGINE_QA_CODES
 from covextract.outputs.codebook import CAUTIONS, CODEBOOK_FIELDS, STAT_DEFINITIONS
 from covextract.outputs.manifest import verify_manifest
 from covextract.pipeline import run
-from covextract.units.build import QA_CODES as UNIT_QA_CODES
 from covextract.recipe import load_recipe
+from covextract.units.build import QA_CODES as UNIT_QA_CODES
 
 
 @pytest.fixture(scope="module")
@@ -67,7 +67,9 @@ def test_codebook_rows_carry_layer_source_and_metadata(demo_run, codebook):
         named = [c.get("name") for c in recipe["covariates"] if c["layer"] == row["layer"]]
         assert any(column.startswith((n or row["layer"]) + "_") for n in named)
         # relative to the recipe's folder, so the codebook reveals no local folder names
-        first_file = layer["file"] if "file" in layer else next(iter(layer["bands"].values()))["file"]
+        first_file = (
+            layer["file"] if "file" in layer else next(iter(layer["bands"].values()))["file"]
+        )
         assert row["source_file"] == first_file
         assert str(folder) not in row["source_file"]
         for key in ("source", "version", "citation", "license"):
@@ -86,16 +88,22 @@ def test_codebook_statistic_definitions_and_units_of_measure(codebook):
         "surface_temp_mean": ("mean", STAT_DEFINITIONS["mean"], "K"),
         "surface_temp_min": ("min", STAT_DEFINITIONS["min"], "K"),
         "lights_density_total": (
-            "density_total", STAT_DEFINITIONS["density_total"], "nW/cm2/sr x km2"
+            "density_total",
+            STAT_DEFINITIONS["density_total"],
+            "nW/cm2/sr x km2",
         ),
         "lights_area_above": (
-            "area_above", STAT_DEFINITIONS["area_above"].format(threshold=1.0), "km2"
+            "area_above",
+            STAT_DEFINITIONS["area_above"].format(threshold=1.0),
+            "km2",
         ),
     }
     for column, (stat, definition, unit) in expected.items():
         row = codebook[column]
         assert (row["statistic"], row["definition"], row["unit_of_measure"]) == (
-            stat, definition, unit
+            stat,
+            definition,
+            unit,
         ), column
     assert "weighted 90th percentile" in codebook["ndvi_q90"]["definition"]
     assert "value > 1.0" in codebook["lights_area_above"]["definition"]
@@ -159,14 +167,27 @@ def test_manifest_fingerprints_every_input(demo_run, manifest):
     folder, _ = demo_run
     roles = {item["role"]: item for item in manifest["inputs"]}
     assert set(roles) == {
-        "recipe", "study_table", "layer:ndvi", "layer:surface_temp", "layer:lights",
-        "layer:cover_2015", "layer:cover_2021", "layer:veg.red", "layer:veg.nir", "layer:pop",
+        "recipe",
+        "study_table",
+        "layer:ndvi",
+        "layer:surface_temp",
+        "layer:lights",
+        "layer:cover_2015",
+        "layer:cover_2021",
+        "layer:veg.red",
+        "layer:veg.nir",
+        "layer:pop",
     }
     files = {
-        "recipe": "recipe.yaml", "study_table": "villages.csv", "layer:ndvi": "ndvi_2021.tif",
-        "layer:surface_temp": "surface_temp_2021.tif", "layer:lights": "night_lights_2021.tif",
-        "layer:cover_2015": "land_cover_2015.tif", "layer:cover_2021": "land_cover_2021.tif",
-        "layer:veg.red": "red_2021.tif", "layer:veg.nir": "nir_2021.tif",
+        "recipe": "recipe.yaml",
+        "study_table": "villages.csv",
+        "layer:ndvi": "ndvi_2021.tif",
+        "layer:surface_temp": "surface_temp_2021.tif",
+        "layer:lights": "night_lights_2021.tif",
+        "layer:cover_2015": "land_cover_2015.tif",
+        "layer:cover_2021": "land_cover_2021.tif",
+        "layer:veg.red": "red_2021.tif",
+        "layer:veg.nir": "nir_2021.tif",
         "layer:pop": "population_2021.tif",
     }
     for role, name in files.items():
@@ -186,13 +207,24 @@ def test_manifest_versions_and_layer_crs(demo_run, manifest):
     assert versions["rasterio"] == rasterio.__version__
     assert versions["gdal"] == rasterio.__gdal_version__
     assert versions["proj"] == pyproj.proj_version_str
-    expected_crs = {"ndvi": "EPSG:4326", "surface_temp": "EPSG:32731", "lights": "EPSG:3857",
-                    "cover_2015": "EPSG:4326", "cover_2021": "EPSG:4326", "veg": "EPSG:4326",
-                    "pop": "EPSG:4326"}
-    files = {"ndvi": "ndvi_2021.tif", "surface_temp": "surface_temp_2021.tif",
-             "lights": "night_lights_2021.tif", "cover_2015": "land_cover_2015.tif",
-             "cover_2021": "land_cover_2021.tif", "veg": "red_2021.tif",
-             "pop": "population_2021.tif"}
+    expected_crs = {
+        "ndvi": "EPSG:4326",
+        "surface_temp": "EPSG:32731",
+        "lights": "EPSG:3857",
+        "cover_2015": "EPSG:4326",
+        "cover_2021": "EPSG:4326",
+        "veg": "EPSG:4326",
+        "pop": "EPSG:4326",
+    }
+    files = {
+        "ndvi": "ndvi_2021.tif",
+        "surface_temp": "surface_temp_2021.tif",
+        "lights": "night_lights_2021.tif",
+        "cover_2015": "land_cover_2015.tif",
+        "cover_2021": "land_cover_2021.tif",
+        "veg": "red_2021.tif",
+        "pop": "population_2021.tif",
+    }
     assert set(manifest["layers"]) == set(expected_crs)
     for name, crs in expected_crs.items():
         layer = manifest["layers"][name]
@@ -231,8 +263,9 @@ def test_manifest_lists_the_boundary_file_and_codebook_the_boundary_shape(
 ):
     data = dict(demo_recipe_data)
     data["study"] = {k: v for k, v in data["study"].items() if k != "points"}
-    data["units"] = {"boundaries": {"file": "village_areas.gpkg", "layer": "village_areas",
-                                    "id": "village_id"}}
+    data["units"] = {
+        "boundaries": {"file": "village_areas.gpkg", "layer": "village_areas", "id": "village_id"}
+    }
     data["layers"] = {"ndvi": data["layers"]["ndvi"]}
     data["covariates"] = [{"layer": "ndvi", "stats": ["mean"]}]
     data["output"] = {"table": "out/boundaries.csv"}

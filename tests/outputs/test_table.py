@@ -94,24 +94,32 @@ def test_leading_zeros_na_dates_and_long_decimals_survive(
     # buffers on the same raster), so the table's text never leaked into the numbers.
     demo = run(demo_dir / "recipe.yaml", write=False).table
     expected = demo.set_index("village_id").loc[["003", "008", "010", "013", "016", "047"]]
-    assert_allclose(out["ndvi_mean"].astype(float), expected["ndvi_mean"].astype(float),
-                    rtol=0, atol=0)
+    assert_allclose(
+        out["ndvi_mean"].astype(float), expected["ndvi_mean"].astype(float), rtol=0, atol=0
+    )
 
 
-def test_drop_removes_columns_and_keeps_the_order_of_the_rest(demo_dir, ndvi_recipe,
-                                                              write_recipe):
+def test_drop_removes_columns_and_keeps_the_order_of_the_rest(demo_dir, ndvi_recipe, write_recipe):
     data = ndvi_recipe(output={"table": "out/shared.csv", "drop": ["lat", "village_name", "lon"]})
     result = run(write_recipe(demo_dir, data))
     header = csv_rows(result.outputs["table"])[0]
     assert header == [
-        "village_id", "settlement", "buffer_radius_m", "visit_date", "households", "notes",
-        "ndvi_mean", "ndvi_valid_share", "ndvi_qa",
+        "village_id",
+        "settlement",
+        "buffer_radius_m",
+        "visit_date",
+        "households",
+        "notes",
+        "ndvi_mean",
+        "ndvi_valid_share",
+        "ndvi_qa",
     ]
     assert "lat" not in result.table.columns and "village_name" not in result.table.columns
 
 
-def test_new_columns_are_numbers_in_python_and_shortest_text_in_csv(demo_dir, ndvi_recipe,
-                                                                   write_recipe):
+def test_new_columns_are_numbers_in_python_and_shortest_text_in_csv(
+    demo_dir, ndvi_recipe, write_recipe
+):
     result = run(write_recipe(demo_dir, ndvi_recipe()))
     assert result.table["ndvi_mean"].dtype == np.float64
     assert result.table["ndvi_valid_share"].dtype == np.float64
@@ -122,8 +130,9 @@ def test_new_columns_are_numbers_in_python_and_shortest_text_in_csv(demo_dir, nd
 
 
 # --------------------------------------------------------------------- formats
-def test_parquet_output_keeps_text_cells_and_numeric_covariates(demo_dir, ndvi_recipe,
-                                                                write_recipe):
+def test_parquet_output_keeps_text_cells_and_numeric_covariates(
+    demo_dir, ndvi_recipe, write_recipe
+):
     csv_result = run(write_recipe(demo_dir, ndvi_recipe(), "as_csv.yaml"))
     data = ndvi_recipe(output={"table": "out/table.parquet", "drop": ["lat", "lon"]})
     result = run(write_recipe(demo_dir, data, "as_parquet.yaml"))
@@ -155,15 +164,17 @@ def test_geopackage_output_from_a_point_table(demo_dir, ndvi_recipe, write_recip
 def test_geopackage_without_the_coordinates_is_refused_before_anything_is_written(
     demo_dir, ndvi_recipe, write_recipe, folder_snapshot
 ):
-    path = write_recipe(demo_dir, ndvi_recipe(output={"table": "out/villages.gpkg",
-                                                      "drop": ["lat", "lon"]}))
+    path = write_recipe(
+        demo_dir, ndvi_recipe(output={"table": "out/villages.gpkg", "drop": ["lat", "lon"]})
+    )
     problems = [str(p) for p in check_recipe(path)]
     assert len(problems) == 1
     assert "output.table" in problems[0] and "GeoPackage" in problems[0]
     assert "lon, lat" in problems[0] and ".csv or .parquet" in problems[0]
     before = folder_snapshot(demo_dir)
-    with pytest.raises(OutputError,
-                       match=r"output\.drop removes the coordinate column\(s\) lon, lat"):
+    with pytest.raises(
+        OutputError, match=r"output\.drop removes the coordinate column\(s\) lon, lat"
+    ):
         run(path)
     assert folder_snapshot(demo_dir) == before
 
