@@ -25,6 +25,7 @@ __all__ = [
     "CovextractWarning",
     "RemoteSchedulerWarning",
     "UnknownClassWarning",
+    "LagZeroWarning",
     "UnitOutsideLayerWarning",
     "SuspectLocationWarning",
     "GeometryRepairedWarning",
@@ -156,3 +157,7 @@ class RemoteSchedulerWarning(CovextractWarning):
 
 class UnknownClassWarning(CovextractWarning):
     """A categorical layer holds codes that are not in its class table."""
+
+
+class LagZeroWarning(CovextractWarning):
+    """A window before each record's date includes days after it (lag 0)."""

@@ -54,6 +54,7 @@ class CovariatePlan:
     qa_column: str
     categorical: dict | None = None
     proxy: dict | None = None
+    timed: dict | None = None
 
 
 @dataclass
@@ -67,6 +68,7 @@ class Plan:
     covariates: list[CovariatePlan]
     output_paths: dict
     problems: list = field(default_factory=list)
+    series: dict = field(default_factory=dict)
 
 
 @dataclass
@@ -247,6 +249,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
 
     # layers
     sources = {}
+    series: dict = {}
     used_layers = {c.layer for c in recipe.covariates}
     used_layers |= {c.since for c in recipe.covariates if getattr(c, "since", None)}
     used_layers |= {c.weight_by for c in recipe.covariates if getattr(c, "weight_by", None)}
@@ -254,7 +257,13 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         if name not in used_layers:
             continue
         try:
-            sources[name] = _open_source(recipe, name, layer)
+            if getattr(layer, "is_series", False):
+                from covextract.timed import open_series
+
+                series[name] = open_series(recipe, name, layer)
+                sources[name] = series[name].source(series[name].periods[0])
+            else:
+                sources[name] = _open_source(recipe, name, layer)
         except CovextractError as exc:
             problem(exc, f"layers.{name}.{'bands' if layer.bands else 'file'}")
 
@@ -268,6 +277,11 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         point = k[0] == "point"
         categorical = None
         proxy = None
+        timed = None
+        if getattr(layer, "is_series", False):
+            timed = _timed_config(recipe, cov, table, series.get(cov.layer), problem, i)
+            if timed is None:
+                continue
         if (
             getattr(cov, "reallocate", None) is not None
             or getattr(cov, "calibrate", None) is not None
@@ -300,6 +314,10 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
             columns = [f"{prefix}_{suffix}" for suffix, _ in stats]
         elif proxy is not None:
             columns = [f"{prefix}_{suffix}" for suffix in proxy["columns"]]
+        elif timed is not None and timed["kind"] == "before":
+            columns = [f"{prefix}_{s.name}_{timed['suffix']}" for s in stats]
+        elif timed is not None:
+            columns = []
         else:
             columns = [f"{prefix}_{s.name}" for s in stats]
         qa_col = f"{prefix}_qa"
@@ -342,6 +360,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 qa_column=qa_col,
                 categorical=categorical,
                 proxy=proxy,
+                timed=timed,
             )
         )
 
@@ -374,7 +393,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 f"{src.grid.crs.to_string()}); check the layer file and the study's CRS",
                 f"covariates[{cp.index}].layer",
             )
-    return Plan(recipe, table, unit_sets, sources, plans, paths, problems)
+    return Plan(recipe, table, unit_sets, sources, plans, paths, problems, series)
 
 
 def _user_stacklevel() -> int:
@@ -454,6 +473,160 @@ class _Clipped:
         if self.ceiling is not None:
             values = np.where(valid, np.minimum(values, self.ceiling), values)
         return values, valid
+
+
+def _timed_text(cp) -> str:
+    t = cp.timed
+    series = t["series"]
+    first, last = t["periods"][0], t["periods"][-1]
+    text = (
+        f"series of {len(series.periods)} periods ({series.step.text}); statistics computed per "
+        f"period with the same weights"
+    )
+    if t["kind"] == "periods":
+        return text + (
+            f"; periods {first.label} to {last.label} written to the long panel "
+            "(output.panel: unit_id, column, period_start, period_end, value)"
+        )
+    b = t["spec"]
+    if b.months is not None:
+        window = (
+            f"the {b.months} calendar months ending {b.lag_months} month(s) before the month of "
+            f"{t['date_column']}"
+        )
+        lag = b.lag_months
+    else:
+        window = f"the {b.days} days ending {b.lag_days} day(s) before {t['date_column']}"
+        lag = b.lag_days
+    text += (
+        f"; combined by {b.combine}"
+        + (f" (periods with value > {b.threshold!r})" if b.combine == "count_above" else "")
+        + f" over {window}; a period longer than the window counts by its overlap with it"
+    )
+    if lag == 0:
+        text += "; lag 0: the window includes days after the record's date"
+    return text
+
+
+def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
+    """Per-period statistics of a series covariate, its panel rows and window columns."""
+    from covextract.derive.time import window_values
+    from covextract.engine.zonal import ZonalResult
+    from covextract.timed import long_panel, parse_record_dates, series_statistics
+
+    t = cp.timed
+    periods = t["periods"]
+    n = len(geoms)
+    vals, qa_pp, builds = series_statistics(
+        t["series"],
+        periods,
+        geoms,
+        cp.stats,
+        rule=cp.rule,
+        area_weighting=cp.area_weighting,
+        threshold=cp.threshold,
+        cache=cache,
+        units_fingerprint=units.fingerprint(),
+        threads=threads,
+        client=client,
+        progress=advance,
+    )
+    panel = pd.concat(
+        [long_panel(units.ids, f"{cp.prefix}_{s.name}", periods, vals[s.name]) for s in cp.stats],
+        ignore_index=True,
+    )
+    qa = [list(dict.fromkeys(c for per in qa_pp for c in per[i])) for i in range(n)]
+    columns = {}
+    valid = np.ones(n)
+    if t["kind"] == "before":
+        before = t["spec"]
+        dates = parse_record_dates(
+            plan.table.frame, t["date_column"], plan.recipe.study.date_format
+        )
+        starts = np.array([p.start for p in periods], dtype="datetime64[D]")
+        ends = np.array([p.end for p in periods], dtype="datetime64[D]")
+        m = len(periods)
+        for s, col in zip(cp.stats, cp.columns, strict=True):
+            long = pd.DataFrame(
+                {
+                    "unit": np.repeat(np.arange(n), m),
+                    "start": np.tile(starts, n),
+                    "end": np.tile(ends, n),
+                    "value": vals[s.name].reshape(-1),
+                }
+            )
+            out = window_values(
+                long,
+                dates.to_numpy(),
+                months=before.months,
+                lag_months=before.lag_months,
+                days=before.days,
+                lag_days=before.lag_days,
+                combine=before.combine,
+                threshold=before.threshold,
+            )
+            columns[col] = out["value"].to_numpy(dtype=np.float64)
+            for i, codes in enumerate(out["qa"]):
+                qa[i] = list(dict.fromkeys(qa[i] + list(codes)))
+        valid = np.isfinite(columns[cp.columns[0]]).astype(float)
+    res = ZonalResult(values={}, qa=qa, valid_share=valid)
+    res.weights_builds = builds
+    return res, columns, panel
+
+
+def _timed_config(recipe, cov, table, series, problem, i):
+    """Periods or the window of a covariate on a series layer."""
+    from covextract.errors import LagZeroWarning, RecipeError
+
+    key = f"covariates[{i}]"
+    if series is None:
+        return None
+    if recipe.layers[cov.layer].kind != "continuous":
+        problem("series of categorical layers are not supported yet", f"{key}.layer")
+        return None
+    if cov.periods is not None:
+        if recipe.output.panel is None:
+            problem(
+                "periods: writes a long panel: add output: {panel: <folder>} to the recipe",
+                f"{key}.periods",
+            )
+            return None
+        try:
+            periods = series.select(cov.periods)
+        except RecipeError as exc:
+            problem(exc, f"{key}.periods")
+            return None
+        return {"kind": "periods", "periods": periods, "series": series}
+    before = cov.before
+    column = before.date or recipe.study.date
+    if column is None:
+        problem("before: needs the record's date: set study.date or before.date", f"{key}.before")
+        return None
+    if table is not None and column not in table.frame.columns:
+        problem(
+            _missing_column(column, table.frame.columns, f"{key}.before.date"),
+            f"{key}.before.date",
+        )
+        return None
+    lag = before.lag_months if before.months is not None else before.lag_days
+    if lag == 0:
+        warnings.warn(
+            f"covariate {i + 1} ({cov.layer}): a window with lag 0 ends with the record's own "
+            "month or day and so includes days after the visit (exposure after the outcome); "
+            "the codebook says so and such records get the QA code after_visit",
+            LagZeroWarning,
+            stacklevel=_user_stacklevel(),
+        )
+    from covextract.timed import before_suffix
+
+    return {
+        "kind": "before",
+        "spec": before,
+        "date_column": column,
+        "series": series,
+        "periods": list(series.periods),
+        "suffix": before_suffix(before),
+    }
 
 
 def _report_unknown_codes(name, layer, src) -> None:
@@ -639,6 +812,7 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
     weights_built = 0
     workers: set = set()
     summary_extra: dict = {}
+    panels: list = []
     for cp in plan.covariates:
         units = plan.unit_sets[cp.unit_key]
         src = plan.sources[cp.layer_name]
@@ -651,7 +825,13 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         est = int(estimate_entries(geoms, src.grid).sum())
         n_blocks = len(src.grid.block_windows())
         advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
-        if cp.proxy is not None:
+        if cp.timed is not None:
+            res, timed_values, panel = _run_timed(
+                cp, plan, units, geoms, cache, advance, threads, client
+            )
+            columns.update(timed_values)
+            panels.append(panel)
+        elif cp.proxy is not None:
             res, proxy_values = _run_proxy(cp, src, geoms, cache, units, advance, threads, client)
             columns.update(proxy_values)
             summary_extra[cp.prefix] = cp.proxy.get("fit", {})
@@ -688,7 +868,8 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         for unit_codes, zonal_codes in zip(units.qa, res.qa, strict=True):
             codes = list(dict.fromkeys(list(unit_codes) + list(zonal_codes)))
             qa.append(";".join(codes))
-        columns[cp.qa_column] = qa
+        if cp.columns:
+            columns[cp.qa_column] = qa
         outside = sum("outside_layer" in q for q in res.qa)
         if outside:
             warnings.warn(
@@ -709,8 +890,9 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
     drop = [c for c in recipe.output.drop if c in augmented.columns]
     written = augmented.drop(columns=drop)
     outputs = {}
+    panel = pd.concat(panels, ignore_index=True) if panels else None
     if write:
-        outputs = _write_outputs(plan, written, codebook, started)
+        outputs = _write_outputs(plan, written, codebook, started, panel=panel)
     summary = {
         "units": len(table.frame),
         "layers": sorted({cp.layer_name for cp in plan.covariates}),
@@ -722,7 +904,9 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
         "workers": sorted(workers),
         "proxy_fits": {k: v for k, v in summary_extra.items() if v},
     }
-    return RunResult(written, list(columns), codebook, outputs, summary)
+    result = RunResult(written, list(columns), codebook, outputs, summary)
+    result.panel = panel
+    return result
 
 
 def _progress_factory(progress):
@@ -763,12 +947,18 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     }
     unit = getattr(layer, "unit", None) or ""
     rows = []
+    if cp.timed is not None:
+        base = {**base, "nodata_handling": base["nodata_handling"] + "; " + _timed_text(cp)}
     if cp.categorical is not None:
         rows = _categorical_codebook_rows(cp, base, layer)
     elif cp.proxy is not None:
         rows = _proxy_codebook_rows(cp, base, layer)
     plain = cp.categorical is None and cp.proxy is None
-    for s, col in zip(cp.stats if plain else [], cp.columns, strict=False):
+    described = cp.columns
+    if cp.timed is not None and cp.timed["kind"] == "periods":
+        # no table columns: describe the long panel's column names instead
+        described = [f"{cp.prefix}_{s.name}" for s in cp.stats]
+    for s, col in zip(cp.stats if plain else [], described, strict=False):
         text = STAT_DEFINITIONS.get(s.kind, s.kind).format(
             q=_q_text(s.q), threshold=cp.threshold, method=cp.rule
         )
@@ -795,6 +985,10 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
             }
         )
     codes = {**_unit_qa_codes(), **qa_codes}
+    if cp.timed is not None:
+        from covextract.timed import WINDOW_QA_CODES
+
+        codes.update(WINDOW_QA_CODES)
     if cp.proxy is not None:
         from covextract.derive import population
 
@@ -803,6 +997,8 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
             if cp.proxy["kind"] == "reallocate"
             else population.CALIBRATION_QA_CODES
         )
+    if not cp.columns:
+        return rows
     rows.append(
         {
             **base,
@@ -1144,7 +1340,7 @@ def _q_text(q):
     return str(int(q)) if float(q).is_integer() else str(q)
 
 
-def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
+def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started, panel=None) -> dict:
     from covextract.outputs.codebook import write_codebook
     from covextract.outputs.manifest import write_manifest
     from covextract.outputs.table import table_format, write_table
@@ -1166,6 +1362,11 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
     if recipe.units is not None and recipe.units.boundaries is not None:
         inputs.append({"role": "boundaries", "path": recipe.resolve(recipe.units.boundaries.file)})
     for name in plan.sources:
+        if name in plan.series:
+            s = plan.series[name]
+            for period in s.periods:
+                inputs.append({"role": f"layer:{name}:{period.label}", "path": s.path(period)})
+            continue
         for role, path in _layer_files(recipe, name):
             inputs.append({"role": role, "path": path})
     layers = {
@@ -1179,6 +1380,13 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
         for name, src in plan.sources.items()
     }
     outputs = [paths["table"], paths["codebook"], paths["codebook_md"]]
+    result_paths = {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
+    if panel is not None and recipe.output.panel is not None:
+        from covextract.timed import write_panel
+
+        folder = recipe.resolve(recipe.output.panel)
+        outputs += write_panel(folder, panel)
+        result_paths["panel"] = folder
     write_manifest(
         paths["manifest"],
         recipe_fingerprint=recipe.fingerprint,
@@ -1188,7 +1396,7 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started) -> dict:
         layers=layers,
         started=started,
     )
-    return {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
+    return result_paths
 
 
 def _gpkg_problem(recipe, table, path) -> OutputError | None:

@@ -48,6 +48,7 @@ class WeightCache:
         self.folder = Path(folder) / "weights" if folder is not None else None
         self.hits = 0
         self.builds = 0
+        self._memo: dict = {}  # the last few weight sets of this run, also without a folder
 
     def path(self, key: str) -> Path | None:
         """File of ``key``."""
@@ -55,6 +56,9 @@ class WeightCache:
 
     def get(self, key: str) -> WeightSet | None:
         """Load weights, or ``None`` when absent; a corrupt file warns and is ignored."""
+        if key in self._memo:
+            self.hits += 1
+            return self._memo[key]
         path = self.path(key)
         if path is None or not path.exists():
             return None
@@ -70,10 +74,17 @@ class WeightCache:
             )
             return None
         self.hits += 1
+        self._remember(key, ws)
         return ws
 
+    def _remember(self, key: str, weights: WeightSet) -> None:
+        self._memo[key] = weights
+        while len(self._memo) > 4:
+            self._memo.pop(next(iter(self._memo)))
+
     def put(self, key: str, weights: WeightSet) -> None:
-        """Store weights atomically (no-op when the cache is disabled)."""
+        """Store weights atomically (in memory only when the cache has no folder)."""
+        self._remember(key, weights)
         path = self.path(key)
         if path is None:
             return

@@ -529,6 +529,14 @@ class Layer(_Model):
         A band-math formula over the band names, e.g. ``(nir - red) / (nir + red)``.
     ceiling : float, optional
         Physical values above it are set to it (saturated night lights).
+    every : str, optional
+        Makes the layer a series: ``file`` is a path template with date fields
+        (``rain_{year}{month:02d}.tif``) and each file covers one step of
+        ``month``, ``day``, ``year`` or ``N days``; for a NetCDF cube, the
+        step when the file has no time bounds.
+    variable : str, optional
+        The variable of a NetCDF cube (``file: rain.nc``); makes the layer a
+        series with the time axis of the file.
     """
 
     file: PathText | None = None
@@ -555,6 +563,26 @@ class Layer(_Model):
     index: Literal["ndvi", "evi"] | None = None
     expression: Annotated[str, StringConstraints(min_length=1)] | None = None
     ceiling: Finite | None = None
+    every: Annotated[str, StringConstraints(min_length=1)] | None = None
+    variable: Annotated[str, StringConstraints(min_length=1)] | None = None
+
+    @field_validator("every")
+    @classmethod
+    def _valid_every(cls, value: str | None) -> str | None:
+        if value is not None:
+            from covextract.errors import RecipeError
+            from covextract.io.series import parse_every
+
+            try:
+                parse_every(value)
+            except RecipeError as exc:
+                raise _problem(exc.problems[0].message) from None
+        return value
+
+    @property
+    def is_series(self) -> bool:
+        """True for a series of rasters (template or cube)."""
+        return self.variable is not None or (self.file is not None and "{" in self.file)
 
     @field_validator("crs")
     @classmethod
@@ -708,11 +736,81 @@ class Layer(_Model):
                     getattr(self, key),
                 )
             )
+        if self.file is not None and "{" in self.file and self.every is None:
+            issues.append(
+                _issue(
+                    ("every",),
+                    "a file template with date fields needs every: "
+                    "(month, day, year or N days), the length of each file's period",
+                    None,
+                )
+            )
+        if (
+            self.every is not None
+            and self.variable is None
+            and (self.file is None or "{" not in self.file)
+        ):
+            issues.append(
+                _issue(
+                    ("every",),
+                    "every: is for series: give file: a template with "
+                    "date fields such as rain_{year}{month:02d}.tif, or a NetCDF "
+                    "cube with variable:",
+                    self.every,
+                )
+            )
+        if self.is_series and self.bands is not None:
+            issues.append(_issue(("bands",), "band-math layers cannot be series yet", None))
         if self.ceiling is not None and self.kind == "categorical":
             issues.append(
                 _issue(("ceiling",), "ceiling applies to continuous values", self.ceiling)
             )
         return issues
+
+
+class Before(_Model):
+    """A window of whole periods before each record's date.
+
+    Parameters
+    ----------
+    date : str, optional
+        Column of the record's date; default ``study.date``.
+    months, lag_months : int
+        The ``months`` months ending with the month ``lag_months`` before the
+        record's month (``lag_months: 0`` ends with the record's own month).
+    days, lag_days : int
+        Instead of months: ``days`` days ending ``lag_days`` days before the date.
+    combine : {"sum", "mean", "min", "max", "count_above"}
+        How the periods' values combine; ``count_above`` needs ``threshold``.
+    threshold : float, optional
+        For ``count_above`` (strictly greater).
+    """
+
+    date: Column | None = None
+    months: Annotated[int, Field(ge=1)] | None = None
+    lag_months: Annotated[int, Field(ge=0)] = 0
+    days: Annotated[int, Field(ge=1)] | None = None
+    lag_days: Annotated[int, Field(ge=0)] = 0
+    combine: Literal["sum", "mean", "min", "max", "count_above"] = "sum"
+    threshold: Finite | None = None
+
+    @model_validator(mode="after")
+    def _one_length(self) -> Before:
+        issues = []
+        if (self.months is None) == (self.days is None):
+            issues.append(
+                _issue(("months",), "give exactly one of months: or days: for the window's length")
+            )
+        if self.combine == "count_above" and self.threshold is None:
+            issues.append(
+                _issue(
+                    ("threshold",),
+                    "combine: count_above needs threshold: (for "
+                    "example 200 for months with more than 200 mm)",
+                )
+            )
+        _raise_issues("Before", issues)
+        return self
 
 
 class Totals(_Model):
@@ -817,6 +915,12 @@ class Covariate(_Model):
         A continuous layer on the same grid (e.g. population density) that
         weights means, spreads and percentiles: weight = coverage × area ×
         that layer's value.
+    periods : str, optional
+        Series layers: the periods to compute into the long panel
+        (``2019-01..2020-12``, open ended ``2019-01..``).
+    before : Before, optional
+        Series layers: combine the per-period statistics over a window before
+        each record's date; one column per statistic.
     reallocate : Reallocate, optional
         Population proxy: zone totals spread over the layer's light; stat
         ``allocated``.
@@ -835,6 +939,8 @@ class Covariate(_Model):
     since: Name | None = None
     pairs: list[Annotated[list[Name], Field(min_length=2, max_length=2)]] | None = None
     weight_by: Name | None = None
+    periods: Annotated[str, StringConstraints(min_length=1)] | None = None
+    before: Before | None = None
     reallocate: Reallocate | None = None
     calibrate: Calibrate | None = None
 
@@ -852,6 +958,9 @@ class Output(_Model):
         Default ``<table stem>_manifest.json`` next to the table.
     drop : list of str
         Study-table columns left out of the written table; default none.
+    panel : str, optional
+        Folder of the long panel of per-period values (Parquet, one file per
+        period); needed by covariates with ``periods:``.
     state : str, optional
         Folder of the weights cache. It reveals where the units are, so the
         default (filled in by :class:`Recipe`) sits next to the study table,
@@ -865,6 +974,7 @@ class Output(_Model):
         default_factory=list
     )
     state: PathText | None = None
+    panel: PathText | None = None
 
     @field_validator("table")
     @classmethod
@@ -1126,6 +1236,45 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
                     since,
                 )
             )
+    series = isinstance(spec, dict) and (
+        spec.get("variable") is not None or "{" in str(spec.get("file") or "")
+    )
+    timed = [k for k in ("periods", "before") if cov.get(k) is not None]
+    if timed and isinstance(spec, dict) and not series:
+        issues.append(
+            _issue(
+                loc + (timed[0],),
+                f"{timed[0]}: needs a series layer; layer "
+                f"{layer!r} is one raster (give it a file template with date "
+                "fields and every:, or a NetCDF cube with variable:)",
+                None,
+            )
+        )
+    if series and not timed:
+        issues.append(
+            _issue(
+                loc + ("layer",),
+                f"layer {layer!r} is a series: add periods: "
+                "(values per period, into output.panel) or before: (a window "
+                "before each record's date) to this covariate",
+                layer,
+            )
+        )
+    if len(timed) == 2:
+        issues.append(
+            _issue(
+                loc + ("before",),
+                "give periods: or before:, not both (use two covariates with different names)",
+            )
+        )
+    if isinstance(cov.get("periods"), str):
+        from covextract.errors import RecipeError
+        from covextract.io.series import parse_selection
+
+        try:
+            parse_selection(cov["periods"])
+        except RecipeError as exc:
+            issues.append(_issue(loc + ("periods",), exc.problems[0].message, cov["periods"]))
     weight_by = cov.get("weight_by")
     if isinstance(weight_by, str):
         other = layers.get(weight_by)

@@ -1,0 +1,180 @@
+"""Series layers through a recipe: per-period panel and windows before each visit."""
+
+import numpy as np
+import pandas as pd
+import pytest
+import rasterio
+from affine import Affine
+from numpy.testing import assert_allclose
+
+from covextract.errors import InputFileError, LagZeroWarning, TableError
+from covextract.pipeline import check_recipe, run
+from covextract.recipe import load_recipe
+
+T = Affine(0.01, 0, 10.0, 0, -0.01, 1.0)
+MONTHS = pd.period_range("2019-01", "2020-12", freq="M")
+
+
+@pytest.fixture
+def folder(tmp_path):
+    rng = np.random.default_rng(9)
+    (tmp_path / "rain").mkdir()
+    for k, month in enumerate(MONTHS):
+        data = (rng.gamma(2.0, 40.0, size=(30, 30)) + k).astype(np.float32)
+        with rasterio.open(
+            tmp_path / "rain" / f"rain_{month.year}{month.month:02d}.tif",
+            "w",
+            driver="GTiff",
+            width=30,
+            height=30,
+            count=1,
+            dtype="float32",
+            crs="EPSG:4326",
+            transform=T,
+        ) as ds:
+            ds.write(data, 1)
+    (tmp_path / "sites.csv").write_text(
+        "site,lon,lat,visit\nA,10.10,0.85,2020-05-17\nB,10.20,0.80,2019-02-03\n"
+        "C,10.15,0.90,\nD,10.05,0.75,2020-12-31\n"
+    )
+    return tmp_path
+
+
+def _recipe(folder, covariates, **output):
+    return load_recipe(
+        {
+            "version": 1,
+            "study": {
+                "table": "sites.csv",
+                "id": "site",
+                "points": {"x": "lon", "y": "lat"},
+                "date": "visit",
+            },
+            "units": {"buffer_m": 5000},
+            "layers": {
+                "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"}
+            },
+            "covariates": covariates,
+            "output": {"table": "out/sites.csv", **output},
+        },
+        base_dir=folder,
+    )
+
+
+def test_window_before_each_visit_equals_a_brute_force_sum(folder):
+    recipe = _recipe(
+        folder,
+        [
+            {
+                "layer": "rain",
+                "stats": ["mean"],
+                "before": {"months": 3, "lag_months": 1, "combine": "sum"},
+            },
+            {
+                "layer": "rain",
+                "name": "wet",
+                "stats": ["mean"],
+                "before": {"months": 6, "lag_months": 1, "combine": "count_above", "threshold": 90},
+            },
+        ],
+        panel="out/panel",
+    )
+    result = run(recipe)
+    t = result.table
+    panel = result.panel
+    assert result.summary["weights_built"] == 1  # one grid: 24 periods, one weight build
+    monthly = panel[panel["column"] == "rain_mean"].set_index(["unit_id", "period_start"])["value"]
+    # Brute force with pandas: visit 17 May 2020, N=3, L=1 -> Feb, Mar, Apr 2020
+    expected = sum(monthly[("A", pd.Timestamp(f"2020-{m:02d}-01"))] for m in (2, 3, 4))
+    assert_allclose(t["rain_mean_sum_3m_lag1"][0], expected, rtol=1e-12)
+    six = [
+        monthly[("A", pd.Timestamp(f"{y}-{m:02d}-01"))]
+        for y, m in [(2019, 11), (2019, 12), (2020, 1), (2020, 2), (2020, 3), (2020, 4)]
+    ]
+    assert t["wet_mean_count_above_6m_lag1"][0] == sum(v > 90 for v in six)
+    # B: the window (Nov 2018 - Jan 2019) reaches before the series; C has no date
+    assert np.isnan(t["rain_mean_sum_3m_lag1"][1]) and "window_outside_series" in t["rain_qa"][1]
+    assert np.isnan(t["rain_mean_sum_3m_lag1"][2]) and "no_date" in t["rain_qa"][2]
+    # the panel: one Parquet file per period, keyed by unit, column and period
+    files = sorted((folder / "out" / "panel").glob("*.parquet"))
+    assert [f.stem for f in files] == [f"{m.year}-{m.month:02d}-01" for m in MONTHS]
+    one = pd.read_parquet(files[0])
+    assert list(one.columns) == ["unit_id", "column", "period_start", "period_end", "value"]
+    assert set(one["column"]) == {"rain_mean", "wet_mean"}
+    rows = {r["column"]: r for r in result.codebook}
+    assert (
+        "3 calendar months ending 1 month(s) before the month of visit"
+        in rows["rain_mean_sum_3m_lag1"]["nodata_handling"]
+    )
+
+
+def test_lag_zero_warns_and_flags_after_visit(folder):
+    with pytest.warns(LagZeroWarning):
+        result = run(
+            _recipe(
+                folder,
+                [{"layer": "rain", "stats": ["mean"], "before": {"months": 2, "lag_months": 0}}],
+            ),
+            write=False,
+        )
+    assert "after_visit" in result.table["rain_qa"][0]
+
+
+def test_periods_need_a_panel_folder_and_mixed_dates_are_refused(folder):
+    problems = check_recipe(
+        _recipe(folder, [{"layer": "rain", "stats": ["mean"], "periods": "2019-01.."}])
+    )
+    assert any("output: {panel:" in str(p) for p in problems)
+    (folder / "sites.csv").write_text(
+        "site,lon,lat,visit\nA,10.1,0.85,2020-05-17\nB,10.2,0.8,03/02/2019\n"
+    )
+    with pytest.raises(TableError, match="mixes date formats.*date_format"):
+        run(
+            _recipe(
+                folder,
+                [{"layer": "rain", "stats": ["mean"], "before": {"months": 1, "lag_months": 1}}],
+            ),
+            write=False,
+        )
+
+
+def test_template_matching_no_file_is_a_clear_error(folder):
+    recipe = _recipe(
+        folder, [{"layer": "rain", "stats": ["mean"], "before": {"months": 1, "lag_months": 1}}]
+    )
+    recipe.layers["rain"].file = "rain/precip_{year}{month:02d}.tif"
+    problems = check_recipe(recipe)
+    assert any("precip_" in str(p) for p in problems)
+    with pytest.raises(InputFileError):
+        run(recipe, write=False)
+
+
+def test_netcdf_cube_gives_the_geotiff_series_values(folder):
+    import xarray as xr
+
+    stack = []
+    for month in MONTHS:
+        with rasterio.open(folder / "rain" / f"rain_{month.year}{month.month:02d}.tif") as ds:
+            stack.append(ds.read(1))
+    lat = 1.0 - 0.005 - 0.01 * np.arange(30)
+    lon = 10.0 + 0.005 + 0.01 * np.arange(30)
+    times = pd.to_datetime([f"{m.year}-{m.month:02d}-15" for m in MONTHS])
+    ds = xr.Dataset(
+        {"precip": (("time", "lat", "lon"), np.array(stack))},
+        coords={"time": times, "lat": lat, "lon": lon},
+    )
+    ds["precip"].attrs["grid_mapping"] = "crs"
+    ds["crs"] = xr.DataArray(0, attrs={"grid_mapping_name": "latitude_longitude"})
+    ds.to_netcdf(folder / "rain.nc")
+    covs = [{"layer": "rain", "stats": ["mean"], "before": {"months": 3, "lag_months": 1}}]
+    tif = run(_recipe(folder, covs), write=False).table
+    recipe = _recipe(folder, covs)
+    recipe.layers["rain"].file = "rain.nc"
+    recipe.layers["rain"].variable = "precip"
+    cube = run(recipe, write=False).table
+    assert_allclose(
+        cube["rain_mean_sum_3m_lag1"].to_numpy(float),
+        tif["rain_mean_sum_3m_lag1"].to_numpy(float),
+        rtol=1e-9,
+        equal_nan=True,
+    )
