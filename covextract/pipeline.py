@@ -315,7 +315,14 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         elif proxy is not None:
             columns = [f"{prefix}_{suffix}" for suffix in proxy["columns"]]
         elif timed is not None and timed["kind"] == "before":
-            columns = [f"{prefix}_{s.name}_{timed['suffix']}" for s in stats]
+            lab = [s.name + (f"_{timed['tag']}" if timed["tag"] else "") for s in stats]
+            columns = [f"{prefix}_{x}_{timed['suffix']}" for x in lab]
+            if timed["tag"] and timed["tag"].startswith("spi"):
+                columns += [f"{c}_category" for c in columns]
+        elif timed is not None and timed["kind"] == "trend":
+            columns = [
+                f"{prefix}_{s.name}_trend_{part}" for s in stats for part in ("ols", "sen", "p")
+            ]
         elif timed is not None:
             columns = []
         else:
@@ -483,6 +490,31 @@ def _timed_text(cp) -> str:
         f"series of {len(series.periods)} periods ({series.step.text}); statistics computed per "
         f"period with the same weights"
     )
+    anomaly = t.get("anomaly")
+    if anomaly is not None:
+        if anomaly.kind == "spi":
+            text += (
+                f"; turned into the standardized precipitation index SPI-{anomaly.months} "
+                f"(McKee et al. 1993; WMO-No. 1090): gamma (location 0) fitted per unit and "
+                f"calendar month to the {anomaly.months}-month totals of {anomaly.baseline}, zeros "
+                "mixed back in, standard normal quantile; _category columns give the WMO class "
+                "(half-open intervals)"
+            )
+        else:
+            what = {
+                "difference": "value minus the baseline mean",
+                "percent": "100 x value / baseline mean (missing where the normal is 0)",
+                "zscore": "(value - baseline mean) / baseline sd (ddof 1)",
+            }[anomaly.kind]
+            text += f"; anomaly per unit and calendar month against {anomaly.baseline}: {what}"
+    if t["kind"] == "trend":
+        return text + (
+            f"; trend per year of the unit's annual values over {t['spec'].periods} (a finer "
+            "series is collapsed to annual means first, since seasonality and autocorrelation "
+            "make monthly p-values far too small): _ols = ordinary least squares slope, _sen = "
+            "Theil-Sen slope (Sen 1968), _p = Mann-Kendall p-value (tie-corrected); at least "
+            f"{t['spec'].min_years} valid years"
+        )
     if t["kind"] == "periods":
         return text + (
             f"; periods {first.label} to {last.label} written to the long panel "
@@ -515,7 +547,7 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
     from covextract.timed import long_panel, parse_record_dates, series_statistics
 
     t = cp.timed
-    periods = t["periods"]
+    periods = t.get("all_periods") or t["periods"]
     n = len(geoms)
     vals, qa_pp, builds = series_statistics(
         t["series"],
@@ -531,13 +563,43 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
         client=client,
         progress=advance,
     )
+    qa = [list(dict.fromkeys(c for per in qa_pp for c in per[i])) for i in range(n)]
+    labels = {s.name: s.name for s in cp.stats}
+    if t.get("anomaly") is not None:
+        for s in cp.stats:
+            vals[s.name], codes = _apply_anomaly(t["anomaly"], periods, vals[s.name])
+            labels[s.name] = f"{s.name}_{t['tag']}"
+            for i in range(n):
+                qa[i] = list(dict.fromkeys(qa[i] + codes[i]))
+    keep = t["periods"]
+    if keep is not periods:
+        idx = [periods.index(p) for p in keep]
+        panel_vals = {k: v[:, idx] for k, v in vals.items()}
+    else:
+        panel_vals = vals
     panel = pd.concat(
-        [long_panel(units.ids, f"{cp.prefix}_{s.name}", periods, vals[s.name]) for s in cp.stats],
+        [
+            long_panel(units.ids, f"{cp.prefix}_{labels[s.name]}", keep, panel_vals[s.name])
+            for s in cp.stats
+        ],
         ignore_index=True,
     )
-    qa = [list(dict.fromkeys(c for per in qa_pp for c in per[i])) for i in range(n)]
     columns = {}
     valid = np.ones(n)
+    if t["kind"] == "trend":
+        from covextract.derive.time import trend
+
+        for s in cp.stats:
+            long = _long(vals[s.name], periods)
+            out = trend(long, min_years=t["spec"].min_years).set_index("unit").reindex(range(n))
+            base = f"{cp.prefix}_{s.name}_trend"
+            columns[f"{base}_ols"] = out["ols_slope"].to_numpy(dtype=np.float64)
+            columns[f"{base}_sen"] = out["sen_slope"].to_numpy(dtype=np.float64)
+            columns[f"{base}_p"] = out["mk_p"].to_numpy(dtype=np.float64)
+            for i, codes in enumerate(out["qa"]):
+                if isinstance(codes, tuple | list):
+                    qa[i] = list(dict.fromkeys(qa[i] + list(codes)))
+        valid = np.isfinite(columns[cp.columns[0]]).astype(float)
     if t["kind"] == "before":
         before = t["spec"]
         dates = parse_record_dates(
@@ -546,7 +608,7 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
         starts = np.array([p.start for p in periods], dtype="datetime64[D]")
         ends = np.array([p.end for p in periods], dtype="datetime64[D]")
         m = len(periods)
-        for s, col in zip(cp.stats, cp.columns, strict=True):
+        for s, col in zip(cp.stats, cp.columns, strict=False):
             long = pd.DataFrame(
                 {
                     "unit": np.repeat(np.arange(n), m),
@@ -566,12 +628,55 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
                 threshold=before.threshold,
             )
             columns[col] = out["value"].to_numpy(dtype=np.float64)
+            if t["tag"] and t["tag"].startswith("spi"):
+                from covextract.derive.spi import spi_category
+
+                columns[f"{col}_category"] = spi_category(columns[col])
             for i, codes in enumerate(out["qa"]):
                 qa[i] = list(dict.fromkeys(qa[i] + list(codes)))
         valid = np.isfinite(columns[cp.columns[0]]).astype(float)
     res = ZonalResult(values={}, qa=qa, valid_share=valid)
     res.weights_builds = builds
     return res, columns, panel
+
+
+def _long(values: np.ndarray, periods) -> pd.DataFrame:
+    """A (units x periods) array as the long panel the time functions take."""
+    n, m = values.shape
+    return pd.DataFrame(
+        {
+            "unit": np.repeat(np.arange(n), m),
+            "start": np.tile(np.array([p.start for p in periods], dtype="datetime64[D]"), n),
+            "end": np.tile(np.array([p.end for p in periods], dtype="datetime64[D]"), n),
+            "value": values.reshape(-1),
+        }
+    )
+
+
+def _apply_anomaly(spec, periods, values: np.ndarray):
+    """Anomalies (or SPI) of each unit's series; returns the array and per-unit QA codes."""
+    from covextract.derive.spi import spi
+    from covextract.derive.time import anomalies
+
+    n, m = values.shape
+    y0, y1 = (int(x) for x in spec.baseline.split(".."))
+    long = _long(values, periods)
+    if spec.kind == "spi":
+        out = spi(long, months=spec.months, baseline=(y0, y1), min_years=spec.min_years or 10)
+        col = "value"
+    else:
+        out = anomalies(long, baseline=(y0, y1), min_years=spec.min_years or 5)
+        col = {"difference": "anomaly", "percent": "percent_of_normal", "zscore": "zscore"}[
+            spec.kind
+        ]
+    out = out.sort_values(["unit", "start"], kind="stable")
+    result = out[col].to_numpy(dtype=np.float64).reshape(n, m)
+    codes = [[] for _ in range(n)]
+    for u, q in zip(out["unit"], out["qa"], strict=True):
+        for c in q or ():
+            if c not in codes[u]:
+                codes[u].append(c)
+    return result, codes
 
 
 def _timed_config(recipe, cov, table, series, problem, i):
@@ -584,6 +689,26 @@ def _timed_config(recipe, cov, table, series, problem, i):
     if recipe.layers[cov.layer].kind != "continuous":
         problem("series of categorical layers are not supported yet", f"{key}.layer")
         return None
+    anomaly = getattr(cov, "anomaly", None)
+    tag = None
+    if anomaly is not None:
+        tag = {"difference": "anom", "percent": "pct", "zscore": "z"}.get(
+            anomaly.kind, f"spi{anomaly.months}"
+        )
+    if getattr(cov, "trend", None) is not None:
+        try:
+            periods = series.select(cov.trend.periods)
+        except RecipeError as exc:
+            problem(exc, f"{key}.trend.periods")
+            return None
+        return {
+            "kind": "trend",
+            "periods": periods,
+            "series": series,
+            "spec": cov.trend,
+            "anomaly": None,
+            "tag": None,
+        }
     if cov.periods is not None:
         if recipe.output.panel is None:
             problem(
@@ -596,7 +721,14 @@ def _timed_config(recipe, cov, table, series, problem, i):
         except RecipeError as exc:
             problem(exc, f"{key}.periods")
             return None
-        return {"kind": "periods", "periods": periods, "series": series}
+        return {
+            "kind": "periods",
+            "periods": periods,
+            "series": series,
+            "anomaly": anomaly,
+            "tag": tag,
+            "all_periods": list(series.periods),
+        }
     before = cov.before
     column = before.date or recipe.study.date
     if column is None:
@@ -626,6 +758,8 @@ def _timed_config(recipe, cov, table, series, problem, i):
         "series": series,
         "periods": list(series.periods),
         "suffix": before_suffix(before),
+        "anomaly": anomaly,
+        "tag": tag,
     }
 
 
@@ -958,7 +1092,14 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     if cp.timed is not None and cp.timed["kind"] == "periods":
         # no table columns: describe the long panel's column names instead
         described = [f"{cp.prefix}_{s.name}" for s in cp.stats]
-    for s, col in zip(cp.stats if plain else [], described, strict=False):
+    pairs = list(zip(cp.stats if plain else [], described, strict=False))
+    if plain and cp.timed is not None and len(described) > len(cp.stats):
+        # trend (3 columns per statistic) and SPI (a value and a category column)
+        pairs = [
+            (next(s for s in cp.stats if col.startswith(f"{cp.prefix}_{s.name}_")), col)
+            for col in described
+        ]
+    for s, col in pairs:
         text = STAT_DEFINITIONS.get(s.kind, s.kind).format(
             q=_q_text(s.q), threshold=cp.threshold, method=cp.rule
         )
@@ -986,9 +1127,12 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
         )
     codes = {**_unit_qa_codes(), **qa_codes}
     if cp.timed is not None:
+        from covextract.derive import time as _time
         from covextract.timed import WINDOW_QA_CODES
 
         codes.update(WINDOW_QA_CODES)
+        if cp.timed["kind"] == "trend" or cp.timed.get("anomaly") is not None:
+            codes.update({k: v for k, v in _time.QA_CODES.items() if k not in codes})
     if cp.proxy is not None:
         from covextract.derive import population
 

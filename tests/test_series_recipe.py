@@ -178,3 +178,167 @@ def test_netcdf_cube_gives_the_geotiff_series_values(folder):
         rtol=1e-9,
         equal_nan=True,
     )
+
+
+def _yearly_folder(tmp_path, years, make):
+    (tmp_path / "y").mkdir()
+    for y in years:
+        with rasterio.open(
+            tmp_path / "y" / f"v_{y}.tif",
+            "w",
+            driver="GTiff",
+            width=30,
+            height=30,
+            count=1,
+            dtype="float32",
+            crs="EPSG:4326",
+            transform=T,
+        ) as ds:
+            ds.write(make(y).astype(np.float32), 1)
+    (tmp_path / "sites.csv").write_text(
+        "site,lon,lat,visit\nA,10.10,0.85,2020-05-17\nB,10.20,0.80,2019-02-03\n"
+    )
+
+
+def test_trend_equals_scipy_on_the_unit_series(tmp_path):
+    # References: scipy.stats.linregress (OLS) and scipy.stats.theilslopes (Sen 1968)
+    from scipy import stats
+
+    rng = np.random.default_rng(4)
+    years = range(2001, 2016)
+    _yearly_folder(tmp_path, years, lambda y: 0.3 * (y - 2001) + rng.normal(0, 1, (30, 30)))
+    recipe = load_recipe(
+        {
+            "version": 1,
+            "study": {"table": "sites.csv", "id": "site", "points": {"x": "lon", "y": "lat"}},
+            "units": {"buffer_m": 5000},
+            "layers": {"v": {"file": "y/v_{year}.tif", "every": "year"}},
+            "covariates": [{"layer": "v", "stats": ["mean"], "trend": {"periods": "2001..2015"}}],
+            "output": {"table": "out/t.csv"},
+        },
+        base_dir=tmp_path,
+    )
+    result = run(recipe, write=False)
+    series_recipe = load_recipe(
+        {
+            **recipe.to_dict(),
+            "covariates": [{"layer": "v", "stats": ["mean"], "periods": "2001..2015"}],
+            "output": {"table": "out/t.csv", "panel": "out/p"},
+        },
+        base_dir=tmp_path,
+    )
+    panel = run(series_recipe, write=False).panel
+    a = panel[panel["unit_id"] == "A"].sort_values("period_start")["value"].to_numpy()
+    x = np.arange(2001, 2016)
+    assert_allclose(result.table["v_mean_trend_ols"][0], stats.linregress(x, a).slope, rtol=1e-10)
+    assert_allclose(result.table["v_mean_trend_sen"][0], stats.theilslopes(a, x)[0], rtol=1e-10)
+    assert result.table["v_mean_trend_p"][0] < 0.01
+    rows = {r["column"]: r for r in result.codebook}
+    assert "Theil-Sen" in rows["v_mean_trend_sen"]["nodata_handling"]
+
+
+def test_anomaly_of_a_constant_series_is_zero_and_spi_has_categories(folder):
+    # common practice: the anomaly of a series equal to its normal is 0
+    recipe = _recipe(
+        folder,
+        [
+            {
+                "layer": "rain",
+                "name": "ra",
+                "stats": ["mean"],
+                "anomaly": {"baseline": "2019..2020", "kind": "difference", "min_years": 2},
+                "before": {"months": 1, "lag_months": 1, "combine": "mean"},
+            },
+        ],
+    )
+    for month in MONTHS:
+        with rasterio.open(folder / "rain" / f"rain_{month.year}{month.month:02d}.tif", "r+") as ds:
+            ds.write(np.full((30, 30), 50.0, np.float32), 1)
+    result = run(recipe, write=False)
+    assert_allclose(result.table["ra_mean_anom_mean_1m_lag1"][0], 0.0, atol=1e-12)
+
+
+def test_spi_before_visit_matches_the_library(tmp_path):
+    # SPI-1 against covextract.derive.spi on the same unit series (itself checked against
+    # scipy.stats.gamma in tests/derive/test_spi.py; McKee et al. 1993, WMO-No. 1090)
+    import warnings
+
+    from covextract.derive.spi import ShortBaselineWarning, spi
+
+    rng = np.random.default_rng(2)
+    (tmp_path / "rain").mkdir()
+    months = pd.period_range("2000-01", "2011-12", freq="M")
+    for month in months:
+        data = rng.gamma(2.0, 30.0, size=(30, 30)).astype(np.float32)
+        with rasterio.open(
+            tmp_path / "rain" / f"rain_{month.year}{month.month:02d}.tif",
+            "w",
+            driver="GTiff",
+            width=30,
+            height=30,
+            count=1,
+            dtype="float32",
+            crs="EPSG:4326",
+            transform=T,
+        ) as ds:
+            ds.write(data, 1)
+    (tmp_path / "sites.csv").write_text("site,lon,lat,visit\nA,10.10,0.85,2011-06-10\n")
+    base = {
+        "version": 1,
+        "study": {
+            "table": "sites.csv",
+            "id": "site",
+            "points": {"x": "lon", "y": "lat"},
+            "date": "visit",
+        },
+        "units": {"buffer_m": 5000},
+        "layers": {"rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month"}},
+        "output": {"table": "out/t.csv", "panel": "out/p"},
+    }
+    with pytest.warns(ShortBaselineWarning):
+        result = run(
+            load_recipe(
+                {
+                    **base,
+                    "covariates": [
+                        {
+                            "layer": "rain",
+                            "stats": ["mean"],
+                            "anomaly": {"baseline": "2000..2011", "kind": "spi", "months": 1},
+                            "before": {"months": 1, "lag_months": 1, "combine": "mean"},
+                        }
+                    ],
+                },
+                base_dir=tmp_path,
+            ),
+            write=False,
+        )
+    plain = run(
+        load_recipe(
+            {**base, "covariates": [{"layer": "rain", "stats": ["mean"], "periods": "2000-01.."}]},
+            base_dir=tmp_path,
+        ),
+        write=False,
+    ).panel
+    long = pd.DataFrame(
+        {
+            "unit": 0,
+            "start": plain["period_start"],
+            "end": plain["period_end"],
+            "value": plain["value"],
+        }
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ShortBaselineWarning)
+        ref = spi(long, months=1, baseline=(2000, 2011))
+    may = ref[pd.to_datetime(ref["start"]) == pd.Timestamp("2011-05-01")]["value"].iloc[0]
+    assert_allclose(result.table["rain_mean_spi1_mean_1m_lag1"][0], may, rtol=1e-10)
+    assert result.table["rain_mean_spi1_mean_1m_lag1_category"][0] in {
+        "extremely wet",
+        "very wet",
+        "moderately wet",
+        "near normal",
+        "moderately dry",
+        "severely dry",
+        "extremely dry",
+    }

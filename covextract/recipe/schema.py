@@ -813,6 +813,78 @@ class Before(_Model):
         return self
 
 
+def _year_range(value):
+    """``"1991..2020"`` -> (1991, 2020)."""
+    if isinstance(value, str) and ".." in value:
+        a, b = value.split("..", 1)
+        if a.strip().isdigit() and b.strip().isdigit() and int(a) <= int(b):
+            return value
+    raise _problem(f"a range of years is written FIRST..LAST (1991..2020), got {value!r}")
+
+
+class Trend(_Model):
+    """Linear trend of each unit's annual values.
+
+    Parameters
+    ----------
+    periods : str
+        Years of the trend, ``2001..2020``.
+    min_years : int
+        Fewer valid years give a missing trend (QA ``too_few_years``); default 5.
+    """
+
+    periods: Annotated[str, BeforeValidator(_year_range)]
+    min_years: Annotated[int, Field(ge=3)] = 5
+
+
+class Anomaly(_Model):
+    """Anomalies against a baseline, per unit and calendar month.
+
+    Parameters
+    ----------
+    baseline : str
+        Baseline years, ``1991..2020``.
+    kind : {"difference", "percent", "zscore", "spi"}
+        value − normal; 100·value/normal; (value − normal)/sd; or the
+        standardized precipitation index (needs ``months``).
+    months : {1, 3, 6, 12}, optional
+        SPI time scale.
+    min_years : int, optional
+        Fewest valid baseline years per calendar month (default 5 for
+        anomalies, 10 for SPI, its minimum); fewer give missing values.
+    """
+
+    baseline: Annotated[str, BeforeValidator(_year_range)]
+    min_years: Annotated[int, Field(ge=2)] | None = None
+    kind: Literal["difference", "percent", "zscore", "spi"] = "difference"
+    months: Literal[1, 3, 6, 12] | None = None
+
+    @model_validator(mode="after")
+    def _spi_scale(self) -> Anomaly:
+        if self.kind == "spi" and self.months is None:
+            _raise_issues(
+                "Anomaly",
+                [
+                    _issue(
+                        ("months",),
+                        "kind: spi needs months: 1, 3, 6 or 12 (the time scale of the index)",
+                    )
+                ],
+            )
+        if self.kind != "spi" and self.months is not None:
+            _raise_issues(
+                "Anomaly",
+                [
+                    _issue(
+                        ("months",),
+                        "months: is the SPI time scale; use it with kind: spi",
+                        self.months,
+                    )
+                ],
+            )
+        return self
+
+
 class Totals(_Model):
     """Known totals per zone (e.g. census counts by district).
 
@@ -941,6 +1013,8 @@ class Covariate(_Model):
     weight_by: Name | None = None
     periods: Annotated[str, StringConstraints(min_length=1)] | None = None
     before: Before | None = None
+    trend: Trend | None = None
+    anomaly: Anomaly | None = None
     reallocate: Reallocate | None = None
     calibrate: Calibrate | None = None
 
@@ -1239,7 +1313,16 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
     series = isinstance(spec, dict) and (
         spec.get("variable") is not None or "{" in str(spec.get("file") or "")
     )
-    timed = [k for k in ("periods", "before") if cov.get(k) is not None]
+    timed = [k for k in ("periods", "before", "trend") if cov.get(k) is not None]
+    if cov.get("anomaly") is not None and not ({"periods", "before"} & set(timed)):
+        issues.append(
+            _issue(
+                loc + ("anomaly",),
+                "anomaly: turns the series into anomalies; "
+                "add periods: (into the panel) or before: (a window before each "
+                "visit) to say where they go",
+            )
+        )
     if timed and isinstance(spec, dict) and not series:
         issues.append(
             _issue(
@@ -1255,16 +1338,17 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
             _issue(
                 loc + ("layer",),
                 f"layer {layer!r} is a series: add periods: "
-                "(values per period, into output.panel) or before: (a window "
-                "before each record's date) to this covariate",
+                "(values per period, into output.panel), before: (a window "
+                "before each record's date) or trend: to this covariate",
                 layer,
             )
         )
-    if len(timed) == 2:
+    if len(timed) >= 2:
         issues.append(
             _issue(
-                loc + ("before",),
-                "give periods: or before:, not both (use two covariates with different names)",
+                loc + (timed[1],),
+                f"give one of periods:, before: or trend:, not {' and '.join(timed)} "
+                "(use covariates with different names)",
             )
         )
     if isinstance(cov.get("periods"), str):
