@@ -319,6 +319,9 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
             columns = [f"{prefix}_{x}_{timed['suffix']}" for x in lab]
             if timed["tag"] and timed["tag"].startswith("spi"):
                 columns += [f"{c}_category" for c in columns]
+        elif timed is not None and timed["kind"] == "change":
+            columns = [f"{prefix}_{s.name}_change_{timed['tag']}" for s in stats]
+            columns.append(f"{prefix}_relchange_{timed['tag']}")
         elif timed is not None and timed["kind"] == "trend":
             columns = [
                 f"{prefix}_{s.name}_trend_{part}" for s in stats for part in ("ols", "sen", "p")
@@ -507,6 +510,15 @@ def _timed_text(cp) -> str:
                 "zscore": "(value - baseline mean) / baseline sd (ddof 1)",
             }[anomaly.kind]
             text += f"; anomaly per unit and calendar month against {anomaly.baseline}: {what}"
+    if t["kind"] == "change":
+        c = t["spec"]
+        return text + (
+            f"; change from {c.from_} to {c.to} computed per pixel on pixels valid in both "
+            f"(each side collapsed per pixel by {c.collapse} over its {len(t['earlier'])} and "
+            f"{len(t['periods'])} periods; a pixel counts only where all are valid), then "
+            "summarised over the unit (not the difference of two unit means); relchange = mean "
+            "change / mean earlier value on the same pixels"
+        )
     if t["kind"] == "trend":
         return text + (
             f"; trend per year of the unit's annual values over {t['spec'].periods} (a finer "
@@ -547,6 +559,8 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
     from covextract.timed import long_panel, parse_record_dates, series_statistics
 
     t = cp.timed
+    if t["kind"] == "change":
+        return _run_change(cp, units, geoms, cache, advance, threads, client)
     periods = t.get("all_periods") or t["periods"]
     n = len(geoms)
     vals, qa_pp, builds = series_statistics(
@@ -640,6 +654,40 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
     return res, columns, panel
 
 
+def _run_change(cp, units, geoms, cache, advance, threads, client):
+    """Per-pixel change between two periods, summarised per unit."""
+    from covextract.engine.zonal import zonal_units
+    from covextract.timed import ChangeSource, CollapsedSource
+
+    t = cp.timed
+    series, how = t["series"], t["spec"].collapse
+    later = CollapsedSource([series.source(p) for p in t["periods"]], how)
+    earlier = CollapsedSource([series.source(p) for p in t["earlier"]], how)
+    kw = dict(
+        rule=cp.rule,
+        area_weighting=cp.area_weighting,
+        threshold=cp.threshold,
+        cache=cache,
+        units_fingerprint=units.fingerprint(),
+        threads=threads,
+        client=client,
+    )
+    res = zonal_units(ChangeSource(later, earlier), geoms, cp.stats, progress=advance, **kw)
+    base = zonal_units(
+        ChangeSource(later, earlier, part="earlier"), geoms, [parse_stat("mean")], **kw
+    )
+    change_mean = zonal_units(ChangeSource(later, earlier), geoms, [parse_stat("mean")], **kw)
+    columns = {}
+    for s, col in zip(cp.stats, cp.columns, strict=False):
+        columns[col] = res.values[s.name]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = change_mean.values["mean"] / base.values["mean"]
+    columns[cp.columns[-1]] = np.where(np.isfinite(rel), rel, np.nan)
+    res.weights_builds += base.weights_builds + change_mean.weights_builds
+    panel = pd.DataFrame(columns=["unit_id", "column", "period_start", "period_end", "value"])
+    return res, columns, panel.iloc[0:0]
+
+
 def _long(values: np.ndarray, periods) -> pd.DataFrame:
     """A (units x periods) array as the long panel the time functions take."""
     n, m = values.shape
@@ -695,6 +743,23 @@ def _timed_config(recipe, cov, table, series, problem, i):
         tag = {"difference": "anom", "percent": "pct", "zscore": "z"}.get(
             anomaly.kind, f"spi{anomaly.months}"
         )
+    if getattr(cov, "change", None) is not None:
+        try:
+            earlier = series.select(cov.change.from_)
+            later = series.select(cov.change.to)
+        except RecipeError as exc:
+            problem(exc, f"{key}.change")
+            return None
+        tag = f"{cov.change.from_}_{cov.change.to}".replace("-", "_")
+        return {
+            "kind": "change",
+            "periods": later,
+            "earlier": earlier,
+            "series": series,
+            "spec": cov.change,
+            "anomaly": None,
+            "tag": tag,
+        }
     if getattr(cov, "trend", None) is not None:
         try:
             periods = series.select(cov.trend.periods)
@@ -1096,7 +1161,13 @@ def _codebook_rows(recipe, cp: CovariatePlan, units, src, qa_codes) -> list[dict
     if plain and cp.timed is not None and len(described) > len(cp.stats):
         # trend (3 columns per statistic) and SPI (a value and a category column)
         pairs = [
-            (next(s for s in cp.stats if col.startswith(f"{cp.prefix}_{s.name}_")), col)
+            (
+                next(
+                    (s for s in cp.stats if col.startswith(f"{cp.prefix}_{s.name}_")),
+                    StatName("relchange", "relchange"),
+                ),
+                col,
+            )
             for col in described
         ]
     for s, col in pairs:

@@ -342,3 +342,49 @@ def test_spi_before_visit_matches_the_library(tmp_path):
         "severely dry",
         "extremely dry",
     }
+
+
+def test_change_is_computed_per_pixel_on_pixels_valid_in_both(tmp_path):
+    # Hand computation: per-pixel change on pixels valid in both years, then the unit mean,
+    # differs from the difference of two unit means when nodata differs (the point of the rule).
+    (tmp_path / "y").mkdir()
+    a = np.full((30, 30), 10.0, np.float32)
+    b = np.full((30, 30), 14.0, np.float32)
+    a[:, :15] = 0.0  # low values on the west half in 2019 ...
+    b[:, :15] = -9999  # ... which is nodata in 2020
+    for y, d in ((2019, a), (2020, b)):
+        with rasterio.open(
+            tmp_path / "y" / f"v_{y}.tif",
+            "w",
+            driver="GTiff",
+            width=30,
+            height=30,
+            count=1,
+            dtype="float32",
+            crs="EPSG:32633",
+            transform=Affine(100, 0, 500_000, 0, -100, 9_000_000),
+            nodata=-9999,
+        ) as ds:
+            ds.write(d, 1)
+    (tmp_path / "a.geojson").write_text(
+        '{"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": "EPSG:32633"}},'
+        '"features": [{"type": "Feature", "properties": {"uid": "u"}, "geometry": {"type": "Polygon",'
+        '"coordinates": [[[500000, 9000000], [503000, 9000000], [503000, 8997000], [500000, 8997000],'
+        " [500000, 9000000]]]}}]}"
+    )
+    recipe = load_recipe(
+        {
+            "version": 1,
+            "study": {"table": "a.geojson", "id": "uid"},
+            "layers": {"v": {"file": "y/v_{year}.tif", "every": "year"}},
+            "covariates": [
+                {"layer": "v", "stats": ["mean", "count"], "change": {"from": 2019, "to": 2020}}
+            ],
+            "output": {"table": "out/t.csv"},
+        },
+        base_dir=tmp_path,
+    )
+    t = run(recipe, write=False).table
+    assert_allclose(t["v_mean_change_2019_2020"][0], 4.0)  # 14 - 10 on the east half
+    assert t["v_count_change_2019_2020"][0] == 450
+    assert_allclose(t["v_relchange_2019_2020"][0], 0.4)

@@ -57,6 +57,10 @@ STAT_DEFINITIONS = {
         "area, km2, of valid pixels with value > {threshold} (coverage x true pixel area)"
     ),
     "share_above": "share of the valid (weighted) area with value > {threshold}",
+    "relchange": (
+        "relative change: the unit's mean per-pixel change divided by its mean earlier value "
+        "on the same pixels (missing where that mean is 0)"
+    ),
     "value": "value of the raster at the point ({method}); missing when that pixel is nodata",
 }
 

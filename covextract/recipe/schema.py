@@ -837,6 +837,32 @@ class Trend(_Model):
     min_years: Annotated[int, Field(ge=3)] = 5
 
 
+class Change(_Model):
+    """Change between two periods, computed per pixel, then summarised per unit.
+
+    Parameters
+    ----------
+    from : str
+        The earlier period (``2019``, ``2019-03``); on a finer series every
+        period inside it is first collapsed per pixel.
+    to : str
+        The later period.
+    collapse : {"mean", "sum", "max"}
+        How a finer series is collapsed per pixel over each period; default mean.
+    """
+
+    model_config = ConfigDict(extra="forbid", strict=True, populate_by_name=True)
+
+    from_: Annotated[str, StringConstraints(min_length=1), Field(alias="from")]
+    to: Annotated[str, StringConstraints(min_length=1)]
+    collapse: Literal["mean", "sum", "max"] = "mean"
+
+    @field_validator("from_", "to", mode="before")
+    @classmethod
+    def _text(cls, value):
+        return str(value) if isinstance(value, int) and not isinstance(value, bool) else value
+
+
 class Anomaly(_Model):
     """Anomalies against a baseline, per unit and calendar month.
 
@@ -1015,6 +1041,7 @@ class Covariate(_Model):
     before: Before | None = None
     trend: Trend | None = None
     anomaly: Anomaly | None = None
+    change: Change | None = None
     reallocate: Reallocate | None = None
     calibrate: Calibrate | None = None
 
@@ -1313,7 +1340,7 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
     series = isinstance(spec, dict) and (
         spec.get("variable") is not None or "{" in str(spec.get("file") or "")
     )
-    timed = [k for k in ("periods", "before", "trend") if cov.get(k) is not None]
+    timed = [k for k in ("periods", "before", "trend", "change") if cov.get(k) is not None]
     if cov.get("anomaly") is not None and not ({"periods", "before"} & set(timed)):
         issues.append(
             _issue(
