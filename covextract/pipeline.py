@@ -921,11 +921,33 @@ def _count_outside(units, grid) -> int:
 
 
 # ----------------------------------------------------------------------- check
-def check_recipe(recipe) -> list:
+def series_report(plan) -> list[str]:
+    """One line per series layer: periods found, gaps, and grids."""
+    lines = []
+    for name, s in plan.series.items():
+        if not s.periods:
+            continue
+        grids = s.grids()
+        gaps = ", ".join(p.label for p in s.gaps[:12]) + (" ..." if len(s.gaps) > 12 else "")
+        line = (
+            f"layer {name}: {len(s.periods)} periods of {s.step.text}, "
+            f"{s.periods[0].label} to {s.periods[-1].label}; "
+            + (f"{len(s.gaps)} gap(s): {gaps}" if s.gaps else "no gaps")
+        )
+        if len(grids) > 1:
+            parts = [f"{len(ps)} on grid {fp[:8]} (from {ps[0].label})" for fp, ps in grids.items()]
+            line += f"; {len(grids)} grids, each with its own weights: " + ", ".join(parts)
+        lines.append(line)
+    return lines
+
+
+def check_recipe(recipe, *, report: list | None = None) -> list:
     """Validate a recipe and every input without computing; return all problems.
 
     An empty list means the recipe can run. Problems are
     :class:`~covextract.errors.RecipeProblem` objects (``str()`` gives the text).
+    When ``report`` is a list, lines describing the series found (periods,
+    gaps, grids) are appended to it.
     """
     try:
         plan = plan_recipe(recipe, collect=True)
@@ -935,6 +957,8 @@ def check_recipe(recipe) -> list:
         layer = plan.recipe.layers[name]
         if getattr(layer, "kind", "continuous") == "categorical":
             _report_unknown_codes(name, layer, src)
+    if report is not None:
+        report.extend(series_report(plan))
     return plan.problems
 
 

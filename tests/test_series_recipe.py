@@ -388,3 +388,21 @@ def test_change_is_computed_per_pixel_on_pixels_valid_in_both(tmp_path):
     assert_allclose(t["v_mean_change_2019_2020"][0], 4.0)  # 14 - 10 on the east half
     assert t["v_count_change_2019_2020"][0] == 450
     assert_allclose(t["v_relchange_2019_2020"][0], 0.4)
+
+
+def test_check_lists_periods_and_gaps(folder):
+    import yaml
+    from typer.testing import CliRunner
+
+    from covextract.cli.app import app
+
+    (folder / "rain" / "rain_202003.tif").unlink()
+    recipe = _recipe(
+        folder, [{"layer": "rain", "stats": ["mean"], "before": {"months": 1, "lag_months": 1}}]
+    )
+    path = folder / "r.yaml"
+    data = recipe.to_dict()
+    path.write_text(yaml.safe_dump(data))
+    result = CliRunner().invoke(app, ["check", str(path)])
+    assert result.exit_code == 0, result.output
+    assert "layer rain: 23 periods of month, 2019-01 to 2020-12; 1 gap(s): 2020-03" in result.stdout

@@ -17,7 +17,10 @@ def check_command(
     with cli_errors(debug):
         from covextract.pipeline import check_recipe
 
-        problems = check_recipe(recipe)
+        report: list = []
+        problems = check_recipe(recipe, report=report)
+        for line in report:
+            typer.echo(line)
         if problems:
             typer.secho(f"{len(problems)} problem(s) found in {recipe}:", err=True, fg="red")
             for p in problems:
