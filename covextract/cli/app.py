@@ -12,6 +12,7 @@ from covextract.cli import check as _check
 from covextract.cli import demo as _demo
 from covextract.cli import describe as _describe
 from covextract.cli import run as _run
+from covextract.cli import schedule as _schedule
 
 app = typer.Typer(
     name="covextract",
@@ -28,6 +29,7 @@ app.command("run")(_run.run_command)
 app.command("check")(_check.check_command)
 app.command("describe")(_describe.describe_command)
 app.command("demo")(_demo.demo_command)
+app.command("schedule")(_schedule.schedule_command)
 
 
 def _print_versions(value: bool) -> None:
