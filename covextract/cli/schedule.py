@@ -1,4 +1,4 @@
-"""``covextract schedule RECIPE``: print (or, when asked, install) a schedule that reruns a recipe."""
+"""``covextract schedule RECIPE``: print (or, when asked, install) a schedule for a recipe."""
 
 from __future__ import annotations
 
