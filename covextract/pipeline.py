@@ -577,7 +577,16 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
         client=client,
         progress=advance,
     )
-    qa = [list(dict.fromkeys(c for per in qa_pp for c in per[i])) for i in range(n)]
+    # Codes that describe the unit's place on the grid hold for every period; codes about
+    # a period's pixels (nodata, low valid share) would wrongly flag records whose window
+    # does not include that period, and missing periods in a window are window_gap.
+    structural = {"outside_layer", "partly_outside", "missed_by_centers"}
+    if t["kind"] == "periods":
+        structural |= {"no_valid_pixel", "low_valid"}
+    qa = [
+        list(dict.fromkeys(c for per in qa_pp for c in per[i] if c in structural))
+        for i in range(n)
+    ]
     labels = {s.name: s.name for s in cp.stats}
     if t.get("anomaly") is not None:
         for s in cp.stats:

@@ -922,6 +922,206 @@ def write_gpkg_frame(path, gdf, layer):
         pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": None})
 
 
+# ------------------------------------------------------ monthly series
+# A coarse lat/lon grid (0.01 degree, ~1.1 km; 120 x 120 pixels over
+# RASTER_BOUNDS) for the monthly rainfall and NDVI series: rainfall varies
+# smoothly, and the small pixels of the other rasters would make 60 files
+# too large for the package.
+SERIES_RES_DEG = 0.01
+RAIN_MONTHS = [(y, m) for y in (2019, 2020, 2021) for m in range(1, 13)]
+NDVI_MONTHS = [(y, m) for y in (2020, 2021) for m in range(1, 13)]
+RAIN_NODATA = -9999.0
+NDVI_SERIES_NODATA = -3000
+# Invented monthly rainfall of an average year (mm, January to December): a
+# wet season from November to April, a dry season from June to September.
+RAIN_CLIMATE_MM = (255.0, 270.0, 220.0, 130.0, 45.0, 12.0, 5.0, 6.0, 18.0, 60.0, 140.0, 215.0)
+# Invented wetness of each year: 2020 wetter than usual, 2021 drier.
+RAIN_YEAR_FACTOR = {2019: 1.00, 2020: 1.12, 2021: 0.88}
+# Rainfall gaps (missing pixels): one month loses the whole 5 km buffer of a
+# village, so windows over that month show QA window_gap; another has a gap
+# in the margin that touches no buffer.
+RAIN_GAP_VILLAGE = ("Elvanstock", (2021, 3), 7.0)  # name, month, radius (km)
+RAIN_GAP_MARGIN = ((2019, 8), (-58.0, -56.0), 6.0)  # month, centre (km), radius (km)
+# A cloud gap in the NDVI series, over part of one village's 5 km buffer.
+NDVI_GAP = ("Pottersnare", (2021, 1), 4.0, 2.5)  # name, month, offset (km), radius (km)
+
+
+def series_grid():
+    return latlon_grid(SERIES_RES_DEG)
+
+
+def _gap(x, y, cx, cy, radius_km, salt):
+    """A round gap with a ragged edge (hashed texture on a 1.5 km lattice)."""
+    rough = hash_unit(np.floor(x / 1.5), np.floor(y / 1.5), salt) - 0.5
+    return np.hypot(x - cx, y - cy) < radius_km + 1.0 * rough
+
+
+def make_rain_series(sc, rng):
+    """Monthly rainfall (mm, float32) for 2019-01..2021-12; NaN in the gaps.
+
+    Each month is the invented average of its calendar month times the
+    year's wetness, a random factor for the month, a fixed spatial pattern
+    (wetter in the north-west and near the river), a smooth storm pattern
+    of its own and 3 % pixel noise; rounded to whole millimetres (exact in
+    float32, so the files compress well).
+    """
+    transform, width, height = series_grid()
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    pattern = 1.0 + 0.18 * np.tanh((y - x) / 60.0) + 0.06 * sc.riparian(x, y)
+    out = {}
+    for k, (year, month) in enumerate(RAIN_MONTHS):
+        level = RAIN_CLIMATE_MM[month - 1] * RAIN_YEAR_FACTOR[year] * rng.uniform(0.8, 1.2)
+        broad = value_noise(x, y, 18.0, 100 + k)
+        local = value_noise(x, y, 5.0, 200 + k)
+        storms = 1.0 + 0.5 * broad + 0.2 * local
+        rain = level * pattern * storms * rng.uniform(0.97, 1.03, x.shape)
+        out[(year, month)] = np.round(np.maximum(rain, 0.0))
+    name, when, radius = RAIN_GAP_VILLAGE
+    out[when][_gap(x, y, *sc.positions[name], radius, 301)] = np.nan
+    when, (cx, cy), radius = RAIN_GAP_MARGIN
+    out[when][_gap(x, y, cx, cy, radius, 302)] = np.nan
+    return {k: v.astype(np.float32) for k, v in out.items()}, transform
+
+
+def make_ndvi_series(sc, rain):
+    """Monthly NDVI x 10000 (int16) for 2020-01..2021-12; -3000 in a cloud gap.
+
+    The invented land NDVI of the scenario (without fields, too fine for
+    this grid) greens up with the rain of the two months before, and the
+    lake stays negative. Stored to 0.001 NDVI (multiples of 10).
+    """
+    transform, width, height = series_grid()
+    x, y = pixel_centres_km(transform, width, height, "EPSG:4326")
+    veg = sc.vegetation(x, y)
+    base = 0.40 + 0.24 * veg + 0.18 * sc.riparian(x, y)
+    base -= 0.35 * np.minimum(sc.settlement(x, y, urban_only=False), 1.0)
+    lake = lake_radius(x, y) < 1.0
+    out = {}
+    for year, month in NDVI_MONTHS:
+        prev = [(year + (month - d - 1) // 12, (month - d - 1) % 12 + 1) for d in (1, 2)]
+        wet = sum(np.nan_to_num(rain[p], nan=RAIN_CLIMATE_MM[p[1] - 1]) for p in prev) / 500.0
+        ndvi = base + 0.16 * (np.clip(wet, 0.0, 1.2) - 0.5)
+        ndvi = np.where(lake, -0.15, np.clip(ndvi, 0.02, 0.88))
+        stored = (np.round(ndvi * 1000.0) * 10.0).astype(np.int16)
+        out[(year, month)] = stored
+    name, when, offset, radius = NDVI_GAP
+    px, py = sc.positions[name]
+    out[when][_gap(x, y, px + offset, py, radius, 303)] = NDVI_SERIES_NODATA
+    return out, transform
+
+
+def write_rain_cube(path, rain, transform):
+    """The rainfall series as one NetCDF cube (CF conventions, deterministic bytes).
+
+    Variable ``precip`` (time, lat, lon), latitude descending (north first,
+    like the GeoTIFFs), a ``crs`` grid-mapping variable, monthly
+    ``time_bnds``; gaps stored as the fill value -9999. No history or date
+    attribute, so two runs give the same bytes.
+    """
+    import pandas as pd
+    import xarray as xr
+    from pyproj import CRS
+
+    if path.exists():
+        path.unlink()
+    stack = np.stack([rain[k] for k in RAIN_MONTHS])
+    _, height, width = stack.shape
+    lon = np.round(transform.c + transform.a * (np.arange(width) + 0.5), 6)
+    lat = np.round(transform.f + transform.e * (np.arange(height) + 0.5), 6)
+    starts = pd.to_datetime([f"{y}-{m:02d}-01" for y, m in RAIN_MONTHS])
+    ends = starts + pd.offsets.MonthBegin(1)
+    mids = starts + (ends - starts) / 2
+    ds = xr.Dataset(
+        {
+            "precip": (("time", "lat", "lon"), stack),
+            "time_bnds": (("time", "nv"), np.stack([starts, ends], axis=1)),
+            "crs": ((), np.int32(0)),
+        },
+        coords={"time": mids, "lat": lat, "lon": lon},
+    )
+    ds["precip"].attrs = {
+        "long_name": "monthly rainfall total (invented)",
+        "units": "mm",
+        "cell_methods": "time: sum",
+        "grid_mapping": "crs",
+    }
+    ds["crs"].attrs = {
+        "grid_mapping_name": "latitude_longitude",
+        "semi_major_axis": 6378137.0,
+        "inverse_flattening": 298.257223563,
+        "crs_wkt": CRS.from_epsg(4326).to_wkt(),
+    }
+    ds["time"].attrs = {"standard_name": "time", "axis": "T", "bounds": "time_bnds"}
+    ds["lat"].attrs = {"standard_name": "latitude", "units": "degrees_north", "axis": "Y"}
+    ds["lon"].attrs = {"standard_name": "longitude", "units": "degrees_east", "axis": "X"}
+    ds.attrs = {
+        "Conventions": "CF-1.8",
+        "title": "Tamsin Vale monthly rainfall 2019-2021 (covextract demo scenario)",
+        "comment": "invented values, not for analysis",
+    }
+    time_units = {"units": "days since 2019-01-01", "calendar": "standard", "dtype": "float64"}
+    ds.to_netcdf(
+        path,
+        engine="netcdf4",
+        format="NETCDF4",
+        encoding={
+            "precip": {
+                "dtype": "float32",
+                "_FillValue": np.float32(RAIN_NODATA),
+                "zlib": True,
+                "complevel": 9,
+                "shuffle": True,
+                "chunksizes": (1, height, width),
+            },
+            "time": time_units,
+            "time_bnds": time_units,
+            "lat": {"_FillValue": None},
+            "lon": {"_FillValue": None},
+            "crs": {"_FillValue": None},
+        },
+    )
+
+
+def write_series(data_dir, sc):
+    """Write the rainfall and NDVI series and the rainfall cube.
+
+    Drawn from a generator of their own after every other file, so the
+    earlier files keep their bytes.
+    """
+    from pyproj import CRS
+
+    rng_series = np.random.default_rng([SEED, 3])
+    rain, tr = make_rain_series(sc, rng_series)
+    (data_dir / "rain").mkdir(exist_ok=True)
+    for (year, month), values in rain.items():
+        write_tif(
+            data_dir / "rain" / f"rain_{year}{month:02d}.tif",
+            np.where(np.isnan(values), np.float32(RAIN_NODATA), values),
+            tr,
+            CRS.from_epsg(4326),
+            RAIN_NODATA,
+            block=128,
+            predictor=3,
+            description=f"rainfall total {year}-{month:02d} (invented)",
+            unit="mm",
+        )
+    write_rain_cube(data_dir / "rain_2019_2021.nc", rain, tr)
+    ndvi, tr = make_ndvi_series(sc, rain)
+    (data_dir / "ndvi_monthly").mkdir(exist_ok=True)
+    for (year, month), values in ndvi.items():
+        write_tif(
+            data_dir / "ndvi_monthly" / f"ndvi_{year}{month:02d}.tif",
+            values,
+            tr,
+            CRS.from_epsg(4326),
+            NDVI_SERIES_NODATA,
+            block=128,
+            predictor=2,
+            description=f"NDVI x 10000, {year}-{month:02d} (invented)",
+            unit="NDVI x 10000, unitless",
+        )
+
+
 # ---------------------------------------------------------------- recipes
 RECIPE_TEMPLATE = """\
 # covextract recipe: the demo scenario (Tamsin Vale district, invented).
@@ -1211,6 +1411,9 @@ def build(data_dir: Path, recipes_dir: Path | None) -> dict[str, str]:
         ],
     )
 
+    # The monthly series come last, from a generator of their own.
+    write_series(data_dir, sc)
+
     (data_dir / "recipe.yaml").write_text(recipe_text(""), encoding="utf-8")
     if recipes_dir is not None:
         note = (
@@ -1226,9 +1429,10 @@ def build(data_dir: Path, recipes_dir: Path | None) -> dict[str, str]:
         )
 
     digests = {}
-    for p in sorted(data_dir.iterdir()):
-        if p.is_file():
-            digests[p.name] = hashlib.sha256(p.read_bytes()).hexdigest()
+    for p in sorted(data_dir.rglob("*")):
+        # Only the demo files: not a weights cache left by a run in the folder.
+        if p.is_file() and not any(part.startswith(".") for part in p.relative_to(data_dir).parts):
+            digests[p.relative_to(data_dir).as_posix()] = hashlib.sha256(p.read_bytes()).hexdigest()
     return digests
 
 

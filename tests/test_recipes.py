@@ -133,6 +133,18 @@ EXPECTED = {
         + [f"cover_change_5km_net_change_{c}" for c in CLASSES + ("tree_cover",)]
         + ["cover_change_5km_qa"],
     ),
+    "rainfall_before_visit.yaml": (
+        "villages.csv",
+        VILLAGE_COLUMNS
+        + [
+            "rain_mean_sum_3m_lag1",
+            "rain_qa",
+            "wet_months_mean_count_above_6m_lag1",
+            "wet_months_qa",
+            "ndvi_m_mean_mean_2m_lag1",
+            "ndvi_m_qa",
+        ],
+    ),
     "village_boundaries.yaml": (
         "villages.csv",
         VILLAGE_COLUMNS
