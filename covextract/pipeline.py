@@ -584,16 +584,16 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
     if t["kind"] == "periods":
         structural |= {"no_valid_pixel", "low_valid"}
     qa = [
-        list(dict.fromkeys(c for per in qa_pp for c in per[i] if c in structural))
-        for i in range(n)
+        list(dict.fromkeys(c for per in qa_pp for c in per[i] if c in structural)) for i in range(n)
     ]
     labels = {s.name: s.name for s in cp.stats}
     if t.get("anomaly") is not None:
         for s in cp.stats:
-            vals[s.name], codes = _apply_anomaly(t["anomaly"], periods, vals[s.name])
+            # per-period codes of the anomaly (a short baseline, a zero normal, the first
+            # months without an N-month total) are not copied to the record: a missing
+            # anomaly inside a record's window shows there as window_gap
+            vals[s.name], _codes = _apply_anomaly(t["anomaly"], periods, vals[s.name])
             labels[s.name] = f"{s.name}_{t['tag']}"
-            for i in range(n):
-                qa[i] = list(dict.fromkeys(qa[i] + codes[i]))
     keep = t["periods"]
     if keep is not periods:
         idx = [periods.index(p) for p in keep]

@@ -13,6 +13,11 @@ def demo_command(
     out: Path = typer.Option(
         None, "--out", help="Folder for the scenario and its outputs (default: a new folder here)."
     ),
+    spi: bool = typer.Option(
+        True,
+        "--spi/--no-spi",
+        help="Also generate a 31-year invented rainfall series and compute SPI-3 before each visit.",
+    ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Copy the invented demo scenario to a folder, run its recipe and show the result."""
@@ -25,3 +30,19 @@ def demo_command(
         typer.echo(f"demo scenario (invented data) laid out in {folder}")
         result = run(folder / "recipe.yaml", write=True, progress=True)
         print_summary(result)
+        if spi:
+            from covextract.demo.spi import SPI_RECIPE, write_spi_series
+
+            write_spi_series(folder)
+            (folder / "recipe_spi.yaml").write_text(SPI_RECIPE, encoding="utf-8")
+            typer.echo(
+                "\nSPI example: 372 invented monthly rainfall rasters generated in "
+                f"{folder / 'spi_rain'}; running recipe_spi.yaml"
+            )
+            spi_result = run(folder / "recipe_spi.yaml", write=True, progress=False)
+            cats = spi_result.table["spi_mean_spi3_mean_1m_lag1_category"].value_counts()
+            typer.echo(
+                "SPI-3 of the month before each visit, villages per WMO category: "
+                + ", ".join(f"{k} {v}" for k, v in cats.items())
+            )
+            typer.echo(f"table: {spi_result.outputs['table']}")

@@ -10,6 +10,7 @@ import csv
 import warnings
 
 import numpy
+import pandas as pd
 import pytest
 import rasterio
 from typer.testing import CliRunner
@@ -210,6 +211,14 @@ def test_demo_lays_out_runs_and_prints_the_outputs(tmp_path):
         assert (folder / "out").joinpath(path.rsplit("/", 1)[1]).is_file()
     for name in ("recipe.yaml", "villages.csv", "ndvi_2021.tif", "village_areas.gpkg"):
         assert (folder / name).is_file()
+    # the generated 31-year series gives SPI-3 before each visit without a short-baseline
+    # warning (the test run turns covextract warnings into errors)
+    assert len(list((folder / "spi_rain").glob("rain_*.tif"))) == 31 * 12
+    assert "villages per WMO category:" in result.stdout
+    spi = pd.read_csv(folder / "out" / "villages_spi.csv", dtype=str, keep_default_na=False)
+    assert len(spi) == 40
+    assert spi["spi_mean_spi3_mean_1m_lag1_category"].ne("").all()
+    assert spi["spi_qa"].eq("").all()
 
 
 def test_demo_refuses_a_foreign_non_empty_folder(tmp_path):
