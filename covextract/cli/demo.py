@@ -16,7 +16,7 @@ def demo_command(
     spi: bool = typer.Option(
         True,
         "--spi/--no-spi",
-        help="Also generate a 31-year invented rainfall series and compute SPI-3 before each visit.",
+        help="Also generate a 31-year invented rainfall series and compute SPI-3 before visits.",
     ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
