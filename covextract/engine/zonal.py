@@ -77,7 +77,10 @@ def build_weights(geoms, grid, rule: str) -> WeightSet:
         ys = np.array([g.y if g is not None else np.nan for g in geoms], dtype=np.float64)
         cov = point_coverage(xs, ys, grid.transform, grid.width, grid.height, method=rule)
     elif rule in PIXEL_RULES:
-        cov = polygon_coverage(geoms, grid.transform, grid.width, grid.height, rule=rule)
+        # full-weight pixels as runs: a few runs per row instead of one entry per pixel
+        cov = polygon_coverage(
+            geoms, grid.transform, grid.width, grid.height, rule=rule, runs=True
+        )
     else:
         raise ValueError(f"unknown pixel rule {rule!r}; use one of {PIXEL_RULES + POINT_METHODS}")
     return weights_from_coverage(cov, grid, rule)
