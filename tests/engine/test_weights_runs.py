@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from affine import Affine
 from numpy.testing import assert_array_equal
-from rasterio.crs import CRS
+from pyproj import CRS
 from shapely.geometry import box
 
 from covextract.engine.coverage import polygon_coverage
