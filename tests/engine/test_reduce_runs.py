@@ -117,8 +117,10 @@ def _assert_equal_stats(ref, got):
 
 
 @pytest.mark.parametrize("rule", ["overlap", "center", "touched"])
-@pytest.mark.parametrize(("grid_name", "weighting"), [("latlon", True), ("mercator", True),
-                                                      ("mercator", False), ("utm", False)])
+@pytest.mark.parametrize(
+    ("grid_name", "weighting"),
+    [("latlon", True), ("mercator", True), ("mercator", False), ("utm", False)],
+)
 def test_run_path_equals_per_pixel_path(grid_name, weighting, rule, monkeypatch):
     grid = GRIDS[grid_name]
     if grid_name == "mercator":

@@ -80,3 +80,28 @@ def test_persistence_round_trip_with_runs(grid):
         assert_array_equal(getattr(back, name), getattr(ws, name), err_msg=name)
     assert_array_equal(back.run_len, ws.run_len)
     assert back.run_unit.dtype == np.int32 and back.run_len.dtype == np.int32
+
+
+def test_group_estimate_with_runs_bounds_stored_items_of_discs():
+    from shapely.geometry import Point
+
+    from covextract.engine.zonal import build_weights, estimate_entries, unit_groups
+
+    grid = Grid(Affine(1.0, 0, 0, 0, -1.0, 400.0), 400, 400, CRS.from_epsg(32631), (64, 64))
+    rng = np.random.default_rng(2)
+    geoms = [
+        Point(x, y).buffer(r, quad_segs=32)
+        for x, y, r in rng.uniform([40, 40, 10], [360, 360, 40], (30, 3))
+    ]
+    ws = build_weights(geoms, grid, "overlap")
+    per_unit = np.bincount(ws.unit, minlength=30) + np.bincount(ws.run_unit, minlength=30)
+    pixels = np.bincount(ws.unit, minlength=30) + np.bincount(
+        ws.run_unit, weights=ws.run_len, minlength=30
+    )
+    est_runs = estimate_entries(geoms, grid, runs=True)
+    est_pix = estimate_entries(geoms, grid)
+    assert (per_unit <= est_runs).all()
+    assert (pixels <= est_pix).all()
+    # a disc of radius r holds about pi r^2 pixels but only about 12 r boundary cells + 2 r runs
+    assert est_runs.sum() < 0.3 * est_pix.sum()
+    assert len(unit_groups(geoms, grid, 20_000, runs=True)) < len(unit_groups(geoms, grid, 20_000))
