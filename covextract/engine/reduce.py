@@ -321,42 +321,54 @@ def reduce_block_runs(
         h = eok & (ev > t)
         e_above.append((np.where(h, c * ea / 1e6, 0.0), np.where(h, w, 0.0)))
 
-    # ---- combine per unit (entries first, then runs; fixed order)
-    units, local = np.unique(
-        np.concatenate([np.asarray(eu, dtype=np.int64), np.asarray(ru, dtype=np.int64)]),
-        return_inverse=True,
-    )
+    # ---- combine per unit: every sum in one reduceat over the items ordered by
+    # unit (entries first, then runs; a fixed order, so bit-reproducible)
+    eu64 = np.asarray(eu, dtype=np.int64)
+    ru64 = np.asarray(ru, dtype=np.int64)
+    units = np.union1d(eu64, ru64)
     k = units.size
-
-    def total(e_part, r_part):
-        return np.bincount(local, weights=np.concatenate([e_part, r_part]), minlength=k)
-
-    w_all = total(w, r_w_all)
-    area_all = total(c * ea / 1e6, r_area)
-    count = np.rint(total(eok.astype(np.float64), r_cnt)).astype(np.int64)
-    wsum = total(e_w, r_w)
-    s1 = total(e_w * ed, r_s1)
-    s2 = total(e_w * ed * ed, r_s2)
-    csum = total(e_csum, r_csum)
-    dens = total(e_csum * ea / 1e6, r_dens)
+    local = np.concatenate([np.searchsorted(units, eu64), np.searchsorted(units, ru64)])
+    order = np.argsort(local, kind="stable")
+    first = np.flatnonzero(np.r_[True, local[order][1:] != local[order][:-1]])
+    pairs = [
+        (w, r_w_all),
+        (c * ea / 1e6, r_area),
+        (eok.astype(np.float64), r_cnt),
+        (e_w, r_w),
+        (e_w * ed, r_s1),
+        (e_w * ed * ed, r_s2),
+        (e_csum, r_csum),
+        (e_csum * ea / 1e6, r_dens),
+    ]
+    for (ea_t, ew_t), (ra_t, rw_t) in zip(e_above, r_above, strict=True):
+        pairs += [(ea_t, ra_t), (ew_t, rw_t)]
+    items = np.empty((len(pairs), local.size))
+    n_e = eu64.size
+    for i, (e_part, r_part) in enumerate(pairs):
+        items[i, :n_e] = e_part
+        items[i, n_e:] = r_part
+    if k:
+        sums = np.add.reduceat(items[:, order], first, axis=1)
+    else:
+        sums = np.zeros((len(pairs), 0))
+    w_all, area_all, cnt_f, wsum, s1, s2, csum, dens = sums[:8]
+    count = np.rint(cnt_f).astype(np.int64)
     with np.errstate(invalid="ignore", divide="ignore"):
         rel = np.where(wsum > 0, s1 / wsum, np.nan)
     mean = s + rel
     m2 = np.where(wsum > 0, np.maximum(s2 - s1 * np.where(wsum > 0, rel, 0.0), 0.0), 0.0)
 
-    order = np.argsort(local, kind="stable")
     lmin = np.concatenate([np.where(eok, ev, np.inf), r_min])[order]
     lmax = np.concatenate([np.where(eok, ev, -np.inf), r_max])[order]
-    first = np.flatnonzero(np.r_[True, np.diff(local[order]) != 0]) if order.size else order
     vmin = np.minimum.reduceat(lmin, first) if k else np.zeros(0)
     vmax = np.maximum.reduceat(lmax, first) if k else np.zeros(0)
     vmin = np.where(count > 0, vmin, np.nan)
     vmax = np.where(count > 0, vmax, np.nan)
 
     above_area, above_w = {}, {}
-    for t, (ea_t, ew_t), (ra_t, rw_t) in zip(thresholds, e_above, r_above, strict=True):
-        above_area[t] = total(ea_t, ra_t)
-        above_w[t] = total(ew_t, rw_t)
+    for j, t in enumerate(thresholds):
+        above_area[t] = sums[8 + 2 * j]
+        above_w[t] = sums[9 + 2 * j]
     return BlockPartial(
         units,
         w_all,
