@@ -186,10 +186,15 @@ def merge_parts(window, unit, pix, cov, run_unit, run_pix, run_len):
     if run_unit.size == 0:
         return unit, pix, cov
     ru, rp = expand_runs(run_unit, run_pix, run_len)
+    size = int(window[2]) * int(window[3])
+    if unit.size == 0:
+        # runs alone are usually stored in (unit, row, column) order already
+        key = ru.astype(np.int64) * size + rp
+        if key.size < 2 or bool((key[1:] > key[:-1]).all()):
+            return ru, rp, np.ones(ru.size)
     u = np.concatenate([unit, ru])
     p = np.concatenate([pix, rp])
     c = np.concatenate([cov, np.ones(ru.size)])
-    size = int(window[2]) * int(window[3])
     order = np.argsort(u.astype(np.int64) * size + p, kind="stable")
     return u[order], p[order], c[order]
 
