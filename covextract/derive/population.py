@@ -640,33 +640,56 @@ def _combine(first: WeightSet, second: WeightSet, grid: Grid) -> WeightSet:
     lattice = grid.block_windows()
     ordinal = {tuple(int(x) for x in w): i for i, w in enumerate(lattice)}
 
-    def keys(ws: WeightSet) -> np.ndarray:
+    def block_ids(ws: WeightSet) -> np.ndarray:
         try:
-            ids = np.array([ordinal[tuple(int(x) for x in w)] for w in ws.windows], dtype=np.int64)
+            return np.array([ordinal[tuple(int(x) for x in w)] for w in ws.windows], dtype=np.int64)
         except KeyError as exc:
             raise RasterError(
                 f"weights hold block {exc.args[0]}, which is not a block of the light layer's "
                 f"grid (blocks of {grid.block_shape}); rebuild the weights for this layer"
             ) from None
-        return np.repeat(ids, np.diff(ws.starts))
 
-    key = np.concatenate([keys(first), keys(second)])
-    order = np.argsort(key, kind="stable")
-    key = key[order]
-    ids, start = np.unique(key, return_index=True)
-    rows = np.concatenate(
-        [first.unit.astype(np.int64), second.unit.astype(np.int64) + first.n_units]
+    ids_a, ids_b = block_ids(first), block_ids(second)
+    ids = np.union1d(ids_a, ids_b)
+
+    def group(starts_a, starts_b, arrays_a, arrays_b):
+        """Items of both sets grouped by block (first's before second's), with offsets."""
+        key = np.concatenate(
+            [np.repeat(ids_a, np.diff(starts_a)), np.repeat(ids_b, np.diff(starts_b))]
+        )
+        order = np.argsort(key, kind="stable")
+        offsets = np.searchsorted(key[order], ids, side="left")
+        offsets = np.append(offsets, key.size).astype(np.int64)
+        merged = [np.concatenate([x, y])[order] for x, y in zip(arrays_a, arrays_b, strict=True)]
+        return offsets, merged
+
+    shift = first.n_units
+    starts, (unit, pix, cov) = group(
+        first.starts,
+        second.starts,
+        (first.unit.astype(np.int64), first.pix, first.cov.astype(np.float64)),
+        (second.unit.astype(np.int64) + shift, second.pix, second.cov.astype(np.float64)),
+    )
+    run_starts, (run_unit, run_pix, run_len) = group(
+        first.run_starts,
+        second.run_starts,
+        (first.run_unit.astype(np.int64), first.run_pix, first.run_len),
+        (second.run_unit.astype(np.int64) + shift, second.run_pix, second.run_len),
     )
     return WeightSet(
         n_units=first.n_units + second.n_units,
         grid_fingerprint=grid.fingerprint,
         rule=f"{first.rule}+{second.rule}",
         windows=[lattice[i] for i in ids],
-        starts=np.append(start, key.size).astype(np.int64),
-        unit=rows[order].astype(np.int32),
-        pix=np.concatenate([first.pix, second.pix])[order].astype(np.int32),
-        cov=np.concatenate([first.cov, second.cov]).astype(np.float64)[order],
+        starts=starts,
+        unit=unit.astype(np.int32),
+        pix=pix.astype(np.int32),
+        cov=cov,
         offgrid=np.concatenate([first.offgrid, second.offgrid]).astype(np.float64),
+        run_starts=run_starts,
+        run_unit=run_unit.astype(np.int32),
+        run_pix=run_pix.astype(np.int32),
+        run_len=run_len.astype(np.int32),
     )
 
 

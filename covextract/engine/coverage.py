@@ -44,7 +44,7 @@ __all__ = ["Coverage", "KERNEL_VERSION", "point_coverage", "polygon_coverage"]
 
 #: Version of the kernels' arithmetic; part of the weight-cache fingerprint, so
 #: bump it whenever a kernel can return different weights for the same input.
-KERNEL_VERSION = 1
+KERNEL_VERSION = 2
 
 _POLYGON_RULES = ("overlap", "center", "touched")
 _POINT_METHODS = ("nearest", "bilinear")
@@ -82,11 +82,18 @@ class Coverage:
         (in pixel areas for ``overlap``, pixel counts for ``center`` and
         ``touched``). ``0`` for a unit wholly on the grid or with no geometry.
 
+    runs : tuple of numpy.ndarray or None
+        ``(unit, row, col_start, col_end)`` (int64) of half-open column runs
+        ``[col_start, col_end)`` of pixels of weight exactly 1, clipped to the
+        grid, sorted by ``(unit, row, col_start)``; ``None`` when every pixel
+        is an entry (``polygon_coverage(..., runs=False)``, points).
+
     Notes
     -----
     Entries are sorted by ``(unit, row, col)`` and no ``(unit, row, col)``
-    appears twice. Units without entries (missing or empty geometry, wholly
-    off the grid) simply have no rows.
+    appears twice, in the entries and the runs together. Units without
+    entries (missing or empty geometry, wholly off the grid) simply have no
+    rows.
     """
 
     n_units: int
@@ -95,6 +102,29 @@ class Coverage:
     col: np.ndarray
     weight: np.ndarray
     offgrid: np.ndarray
+    runs: tuple | None = None
+
+    @property
+    def n_runs(self) -> int:
+        """Number of runs (0 without runs)."""
+        return 0 if self.runs is None else int(self.runs[0].size)
+
+    def expanded(self) -> Coverage:
+        """The same coverage with every run expanded into per-pixel entries of weight 1."""
+        if self.runs is None:
+            return self
+        ru, rr, ra, rb = self.runs
+        n = rb - ra
+        src = np.repeat(np.arange(ru.size), n)
+        col = ra[src] + (np.arange(src.size) - np.repeat(np.cumsum(n) - n, n))
+        unit = np.concatenate([self.unit, ru[src]])
+        row = np.concatenate([self.row, rr[src]])
+        col = np.concatenate([self.col, col])
+        weight = np.concatenate([self.weight, np.ones(src.size)])
+        order = _sort_cells(unit, row, col)
+        return Coverage(
+            self.n_units, unit[order], row[order], col[order], weight[order], self.offgrid
+        )
 
 
 # ---------------------------------------------------------------- validation
@@ -399,12 +429,26 @@ def _snap(values: np.ndarray) -> np.ndarray:
     return np.minimum(values, 1.0)
 
 
-def _emit(cells: _Cells, cell_keep, cell_w, run_keep, run_w, ox, oy, width, height, offgrid):
+def _emit(
+    cells: _Cells,
+    cell_keep,
+    cell_w,
+    run_keep,
+    run_w,
+    ox,
+    oy,
+    width,
+    height,
+    offgrid,
+    as_runs=None,
+):
     """Expand cells and their runs into clipped grid entries.
 
     ``cell_keep``/``run_keep`` say which cells and runs carry weight,
     ``cell_w``/``run_w`` the weight. Weight falling off the grid is added to
-    ``offgrid`` (in place) without enumerating off-grid pixels.
+    ``offgrid`` (in place) without enumerating off-grid pixels. With
+    ``as_runs`` (``"interior"`` or ``"all"``) the result is ``(entries,
+    runs)``, see :func:`_emit_split`.
     """
     gr = cells.row + oy[cells.unit]
     gc = cells.col + ox[cells.unit]
@@ -420,6 +464,8 @@ def _emit(cells: _Cells, cell_keep, cell_w, run_keep, run_w, ox, oy, width, heig
         run_keep, run_len - run_on, 0
     )
     offgrid += np.bincount(cells.unit, weights=off, minlength=offgrid.size)
+    if as_runs is not None:
+        return _emit_split(cells, cell_keep & cell_on, cell_w, run_on, rs, run_w, gr, gc, as_runs)
 
     counts = (cell_keep & cell_on).astype(np.int64) + run_on
     total = int(counts.sum())
@@ -431,6 +477,54 @@ def _emit(cells: _Cells, cell_keep, cell_w, run_keep, run_w, ox, oy, width, heig
     col = np.where(is_cell & (pos == 0), gc[src], rs[src] + k)
     weight = np.where(is_cell & (pos == 0), cell_w[src], run_w[src])
     return cells.unit[src], gr[src], col, weight
+
+
+def _emit_split(cells, cell_on, cell_w, run_on, rs, run_w, gr, gc, as_runs):
+    """Clipped cells and runs as ``((unit, row, col, weight), (unit, row, a, b))``.
+
+    ``as_runs == "interior"`` (overlap): runs of weight exactly 1 stay runs,
+    every cell and every other run becomes per-pixel entries, so a cell whose
+    weight only rounds to 1 is never assumed interior. ``"all"`` (touched,
+    every weight 1): cells become runs of one pixel, and runs that touch in a
+    row are joined.
+    """
+    if as_runs == "interior":
+        is_run = (run_on > 0) & (run_w == 1.0)
+        counts = cell_on.astype(np.int64) + np.where(is_run, 0, run_on)
+        total = int(counts.sum())
+        src = np.repeat(np.arange(counts.size), counts)
+        pos = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
+        is_cell = cell_on[src]
+        k = pos - is_cell
+        first = is_cell & (pos == 0)
+        col = np.where(first, gc[src], rs[src] + k)
+        weight = np.where(first, cell_w[src], run_w[src])
+        entries = (cells.unit[src], gr[src], col, weight)
+        runs = (cells.unit[is_run], gr[is_run], rs[is_run], rs[is_run] + run_on[is_run])
+        return entries, runs
+    # every pixel weighs 1: a kept cell is a run of one pixel, directly followed
+    # by its own run when that one starts right after it
+    has_run = run_on > 0
+    u = np.concatenate([cells.unit[cell_on], cells.unit[has_run]])
+    r = np.concatenate([gr[cell_on], gr[has_run]])
+    a = np.concatenate([gc[cell_on], rs[has_run]])
+    b = np.concatenate([gc[cell_on] + 1, rs[has_run] + run_on[has_run]])
+    u, r, a, b = _join_runs(u, r, a, b)
+    z = np.zeros(0, dtype=np.int64)
+    return (z, z, z, np.zeros(0)), (u, r, a, b)
+
+
+def _join_runs(u, r, a, b):
+    """Sort disjoint runs by ``(unit, row, start)`` and join those that touch."""
+    if u.size == 0:
+        return u, r, a, b
+    order = _sort_cells(u, r, a)
+    u, r, a, b = u[order], r[order], a[order], b[order]
+    new = np.ones(u.size, dtype=bool)
+    new[1:] = (u[1:] != u[:-1]) | (r[1:] != r[:-1]) | (a[1:] != b[:-1])
+    first = np.flatnonzero(new)
+    last = np.r_[first[1:], u.size] - 1
+    return u[first], r[first], a[first], b[last]
 
 
 def _unit_origins(e: _Edges, n_units: int):
@@ -446,7 +540,7 @@ def _unit_origins(e: _Edges, n_units: int):
     return ox, oy
 
 
-def _area_rule(e: _Edges, n_units, width, height, rule, floor):
+def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     ox, oy = _unit_origins(e, n_units)
     # shifting by the origin is exact and keeps the accumulation's digits;
     # the integer offsets are restored when the cells are emitted
@@ -462,13 +556,33 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor):
         if rule == "overlap":
             cell_keep = (value >= floor) & (value > 0)
             emitted = _emit(
-                cells, cell_keep, value, run_keep, run, oxi, oyi, width, height, offgrid
+                cells,
+                cell_keep,
+                value,
+                run_keep,
+                run,
+                oxi,
+                oyi,
+                width,
+                height,
+                offgrid,
+                as_runs="interior" if runs else None,
             )
         else:  # touched
             cell_keep = cells.boundary | ((value >= floor) & (value > 0))
             ones = np.ones(cells.unit.size)
             emitted = _emit(
-                cells, cell_keep, ones, run_keep, ones, oxi, oyi, width, height, offgrid
+                cells,
+                cell_keep,
+                ones,
+                run_keep,
+                ones,
+                oxi,
+                oyi,
+                width,
+                height,
+                offgrid,
+                as_runs="all" if runs else None,
             )
         out.append(emitted)
     return out, offgrid
@@ -554,7 +668,7 @@ def _merge_runs(u, r, a, b):
     return tuple(arr)
 
 
-def _center_rule(e: _Edges, n_units, width, height):
+def _center_rule(e: _Edges, n_units, width, height, runs=False):
     load = np.abs(e.y1 - e.y0) + 3.0
     offgrid = np.zeros(n_units)
     out = []
@@ -565,6 +679,11 @@ def _center_rule(e: _Edges, n_units, width, height):
         cb = np.minimum(b, width)
         on = np.where(row_on, np.maximum(cb - ca, 0), 0)
         offgrid += np.bincount(u, weights=(b - a) - on, minlength=n_units)
+        if runs:
+            z = np.zeros(0, dtype=np.int64)
+            k = on > 0
+            out.append(((z, z, z, np.zeros(0)), (u[k], r[k], ca[k], cb[k])))
+            continue
         src = np.repeat(np.arange(u.size), on)
         col = ca[src] + (np.arange(src.size) - np.repeat(np.cumsum(on) - on, on))
         out.append((u[src], r[src], col, np.ones(src.size)))
@@ -572,7 +691,19 @@ def _center_rule(e: _Edges, n_units, width, height):
 
 
 # --------------------------------------------------------------- public API
-def _assemble(n_units, parts, offgrid) -> Coverage:
+def _assemble(n_units, parts, offgrid, runs=False) -> Coverage:
+    if runs:
+        entries = [p[0] for p in parts]
+        cov = _assemble(n_units, entries, offgrid)
+        if parts:
+            ru, rr, ra, rb = (
+                np.asarray(np.concatenate(v), dtype=np.int64)
+                for v in zip(*[p[1] for p in parts], strict=True)
+            )
+        else:
+            ru = rr = ra = rb = np.zeros(0, dtype=np.int64)
+        cov.runs = (ru, rr, ra, rb)
+        return cov
     if parts:
         unit, row, col, weight = (np.concatenate(v) for v in zip(*parts, strict=True))
     else:
@@ -596,6 +727,7 @@ def polygon_coverage(
     rule: str = "overlap",
     *,
     floor: float = 1e-10,
+    runs: bool = False,
 ) -> Coverage:
     """Coverage weights of polygon units over a raster grid.
 
@@ -628,6 +760,13 @@ def polygon_coverage(
         ``overlap`` weights below it are float noise and are dropped
         (default 1e-10 of a pixel); the same threshold decides whether a
         pixel without boundary counts as covered for ``touched``.
+    runs : bool, keyword-only
+        Return pixels of weight exactly 1 as column runs in
+        :attr:`Coverage.runs` instead of one entry each: every pixel for
+        ``center`` and ``touched``; for ``overlap`` the interior runs the
+        accumulation finds between boundary cells (boundary cells stay
+        entries even when their weight is 1). ``Coverage.expanded()`` gives
+        exactly the entries of ``runs=False``.
 
     Returns
     -------
@@ -691,14 +830,15 @@ def polygon_coverage(
     arr = _as_geometry_array(geoms)
     n_units = arr.size
     idx = _present_polygons(arr)
+    runs = bool(runs)
     if idx.size == 0:
-        return _assemble(n_units, [], np.zeros(n_units))
+        return _assemble(n_units, [], np.zeros(n_units), runs)
     edges = _pixel_edges(arr, idx, inv)
     if rule == "center":
-        parts, offgrid = _center_rule(edges, n_units, width, height)
+        parts, offgrid = _center_rule(edges, n_units, width, height, runs)
     else:
-        parts, offgrid = _area_rule(edges, n_units, width, height, rule, floor)
-    return _assemble(n_units, parts, offgrid)
+        parts, offgrid = _area_rule(edges, n_units, width, height, rule, floor, runs)
+    return _assemble(n_units, parts, offgrid, runs)
 
 
 def point_coverage(

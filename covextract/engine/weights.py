@@ -6,6 +6,13 @@ index *local to its block*, so grids of more than 2³¹ pixels never overflow)
 and ``cov`` (float64 coverage, so weighted values keep full precision).
 ``starts[b]:starts[b+1]`` are the entries of block ``windows[b]``. Blocks
 without entries are left out, so they are never read.
+
+Pixels of weight exactly 1 may instead be stored as *runs*: consecutive
+pixels of one row of one block, ``(run_unit, run_pix, run_len)`` with
+``run_pix`` the block-local index of the first pixel, grouped by block like
+the entries (``run_starts``) and sorted by unit within a block. A run costs
+12 bytes however long it is, so a 5 km buffer on a 100 m grid holds about a
+hundred runs and a few hundred boundary entries instead of 8 000 entries.
 """
 
 from __future__ import annotations
@@ -16,7 +23,17 @@ import numpy as np
 
 from covextract.engine.grid import Grid
 
-__all__ = ["WeightSet", "weights_from_coverage"]
+__all__ = ["WeightSet", "weights_from_coverage", "expand_runs"]
+
+
+def expand_runs(run_unit, run_pix, run_len):
+    """Per-pixel ``(unit, pix)`` (int32) of runs, in the runs' order."""
+    n = np.asarray(run_len, dtype=np.int64)
+    total = int(n.sum())
+    src = np.repeat(np.arange(n.size), n)
+    first = np.cumsum(n) - n
+    pix = np.asarray(run_pix, dtype=np.int64)[src] + (np.arange(total) - first[src])
+    return np.asarray(run_unit, dtype=np.int32)[src], pix.astype(np.int32)
 
 
 @dataclass
@@ -41,6 +58,12 @@ class WeightSet:
         Coverage weight of each entry, in (0, 1].
     offgrid : ndarray of float64
         Per unit, the coverage that falls outside the grid (pixel units).
+    run_starts : ndarray of int64 or None
+        Offsets of each block's runs; length ``len(windows) + 1``. ``None``:
+        no runs (every weight is an entry).
+    run_unit, run_pix, run_len : ndarray of int32 or None
+        Unit, block-local index of the first pixel and number of pixels
+        (>= 1, within one row of the block) of each run of weight-1 pixels.
     """
 
     n_units: int
@@ -52,26 +75,72 @@ class WeightSet:
     pix: np.ndarray
     cov: np.ndarray
     offgrid: np.ndarray
+    run_starts: np.ndarray | None = None
+    run_unit: np.ndarray | None = None
+    run_pix: np.ndarray | None = None
+    run_len: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.run_starts is None:
+            z = np.zeros(0, dtype=np.int32)
+            self.run_starts = np.zeros(len(self.windows) + 1, dtype=np.int64)
+            self.run_unit, self.run_pix, self.run_len = z, z.copy(), z.copy()
 
     @property
     def n_entries(self) -> int:
-        """Number of non-zero weights."""
-        return int(self.unit.size)
+        """Number of non-zero weights (per-pixel entries plus the pixels of every run)."""
+        return int(self.unit.size) + int(self.run_len.sum(dtype=np.int64))
+
+    @property
+    def n_runs(self) -> int:
+        """Number of stored runs."""
+        return int(self.run_unit.size)
+
+    @property
+    def n_stored(self) -> int:
+        """Stored items: per-pixel entries plus runs (what memory is proportional to)."""
+        return int(self.unit.size) + self.n_runs
+
+    def block_parts(self, b: int):
+        """``(window, (unit, pix, cov), (run_unit, run_pix, run_len))`` of the b-th block.
+
+        Entries and runs are each sorted by unit; a pixel of a unit is either
+        an entry or in one run, never both.
+        """
+        s, e = int(self.starts[b]), int(self.starts[b + 1])
+        rs, re = int(self.run_starts[b]), int(self.run_starts[b + 1])
+        return (
+            self.windows[b],
+            (self.unit[s:e], self.pix[s:e], self.cov[s:e]),
+            (self.run_unit[rs:re], self.run_pix[rs:re], self.run_len[rs:re]),
+        )
 
     def block(self, b: int):
-        """``(window, unit, pix, cov)`` of the b-th block with entries."""
-        s, e = int(self.starts[b]), int(self.starts[b + 1])
-        return self.windows[b], self.unit[s:e], self.pix[s:e], self.cov[s:e]
+        """``(window, unit, pix, cov)`` of the b-th block, runs expanded to pixels.
+
+        Every weight of the block as one entry per pixel, sorted by unit, then
+        pixel index.
+        """
+        window, (unit, pix, cov), runs = self.block_parts(b)
+        return (window, *merge_parts(window, unit, pix, cov, *runs))
 
     def units_on_grid(self) -> np.ndarray:
         """Boolean per unit: at least one weight on the grid."""
         out = np.zeros(self.n_units, dtype=bool)
         out[self.unit] = True
+        out[self.run_unit] = True
         return out
 
     def coverage_totals(self) -> np.ndarray:
         """Σ coverage on the grid per unit (pixel units)."""
-        return np.bincount(self.unit, weights=self.cov.astype(np.float64), minlength=self.n_units)
+        total = np.bincount(
+            self.unit, weights=self.cov.astype(np.float64), minlength=self.n_units
+        ).astype(np.float64)  # an empty bincount is int64
+        if self.run_unit.size:
+            total += np.bincount(
+                self.run_unit, weights=self.run_len.astype(np.float64), minlength=self.n_units
+            )
+        return total
 
     # ------------------------------------------------------------ persistence
     def to_arrays(self) -> dict[str, np.ndarray]:
@@ -86,6 +155,10 @@ class WeightSet:
             "pix": self.pix,
             "cov": self.cov,
             "offgrid": self.offgrid,
+            "run_starts": self.run_starts.astype(np.int64),
+            "run_unit": self.run_unit,
+            "run_pix": self.run_pix,
+            "run_len": self.run_len,
         }
 
     @classmethod
@@ -101,7 +174,37 @@ class WeightSet:
             pix=np.asarray(arrays["pix"], dtype=np.int32),
             cov=np.asarray(arrays["cov"], dtype=np.float64),
             offgrid=np.asarray(arrays["offgrid"], dtype=np.float64),
+            run_starts=np.asarray(arrays["run_starts"], dtype=np.int64),
+            run_unit=np.asarray(arrays["run_unit"], dtype=np.int32),
+            run_pix=np.asarray(arrays["run_pix"], dtype=np.int32),
+            run_len=np.asarray(arrays["run_len"], dtype=np.int32),
         )
+
+
+def merge_parts(window, unit, pix, cov, run_unit, run_pix, run_len):
+    """Entries and expanded runs of one block as ``(unit, pix, cov)`` sorted by unit, pixel."""
+    if run_unit.size == 0:
+        return unit, pix, cov
+    ru, rp = expand_runs(run_unit, run_pix, run_len)
+    size = int(window[2]) * int(window[3])
+    if unit.size == 0:
+        # runs alone are usually stored in (unit, row, column) order already
+        key = ru.astype(np.int64) * size + rp
+        if key.size < 2 or bool((key[1:] > key[:-1]).all()):
+            return ru, rp, np.ones(ru.size)
+    u = np.concatenate([unit, ru])
+    p = np.concatenate([pix, rp])
+    c = np.concatenate([cov, np.ones(ru.size)])
+    order = np.argsort(u.astype(np.int64) * size + p, kind="stable")
+    return u[order], p[order], c[order]
+
+
+def _group_by_block(block_id: np.ndarray, n_blocks: int) -> np.ndarray:
+    """Stable permutation grouping items by block (a radix sort when ids fit in uint16)."""
+    if n_blocks < 2**16:
+        # numpy's stable sort of 16-bit integers is a radix sort: linear time
+        return np.argsort(block_id.astype(np.uint16), kind="stable")
+    return np.argsort(block_id, kind="stable")
 
 
 def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
@@ -121,31 +224,50 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         raise ValueError("grid has no pixels")
     bh, bw = windows[0][2], windows[0][3]
     n_bcols = -(-grid.width // bw)
+    n_blocks = n_bcols * -(-grid.height // bh)
     row = np.asarray(coverage.row, dtype=np.int64)
     col = np.asarray(coverage.col, dtype=np.int64)
-    n_blocks = n_bcols * -(-grid.height // bh)
     block_id = (row // bh) * n_bcols + (col // bw)
-    # A stable sort keeps each block's entries in (unit, row, col) order. With fewer
-    # than 65 536 blocks the ids fit in uint16, for which numpy's stable sort is a
-    # radix sort: linear in the number of entries.
-    if n_blocks < 2**16:
-        order = np.argsort(block_id.astype(np.uint16), kind="stable")
-    else:
-        order = np.argsort(block_id, kind="stable")
+    # a stable grouping keeps each block's entries in (unit, row, col) order
+    order = _group_by_block(block_id, n_blocks)
     counts = np.bincount(block_id, minlength=n_blocks)
-    ids = np.flatnonzero(counts)
+
+    runs = getattr(coverage, "runs", None)
+    if runs is not None and runs[0].size:
+        ru, rr, ra, rb = (np.asarray(v, dtype=np.int64) for v in runs)
+        # cut runs at block column boundaries: piece k of a run lies in block column bc0 + k
+        bc0 = ra // bw
+        pieces = (rb - 1) // bw - bc0 + 1
+        src = np.repeat(np.arange(ru.size), pieces)
+        bc = bc0[src] + (np.arange(src.size) - np.repeat(np.cumsum(pieces) - pieces, pieces))
+        pr = rr[src]
+        pa = np.maximum(ra[src], bc * bw)
+        pb = np.minimum(rb[src], (bc + 1) * bw)
+        run_block = (pr // bh) * n_bcols + bc
+        run_order = _group_by_block(run_block, n_blocks)
+        run_counts = np.bincount(run_block, minlength=n_blocks)
+    else:
+        src = np.zeros(0, dtype=np.int64)
+        ru = pr = pa = pb = run_block = run_order = src
+        run_counts = np.zeros(n_blocks, dtype=np.int64)
+
+    ids = np.flatnonzero(counts + run_counts)
     starts = np.concatenate([[0], np.cumsum(counts[ids])]).astype(np.int64)
-    block_id = block_id[order]
+    run_starts = np.concatenate([[0], np.cumsum(run_counts[ids])]).astype(np.int64)
     win_of = []
     for bid in ids:
         r0 = int(bid // n_bcols) * bh
         c0 = int(bid % n_bcols) * bw
         win_of.append((r0, c0, min(bh, grid.height - r0), min(bw, grid.width - c0)))
-    row_o, col_o = row[order], col[order]
-    r0s = (block_id // n_bcols) * bh
-    c0s = (block_id % n_bcols) * bw
-    widths = np.minimum(bw, grid.width - c0s)
-    pix = (row_o - r0s) * widths + (col_o - c0s)
+
+    def local(bids, r, c):
+        r0s = (bids // n_bcols) * bh
+        c0s = (bids % n_bcols) * bw
+        widths = np.minimum(bw, grid.width - c0s)
+        return ((r - r0s) * widths + (c - c0s)).astype(np.int32)
+
+    bid_e = block_id[order]
+    bid_r = run_block[run_order]
     return WeightSet(
         n_units=int(coverage.n_units),
         grid_fingerprint=grid.fingerprint,
@@ -153,7 +275,11 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         windows=win_of,
         starts=starts,
         unit=np.asarray(coverage.unit, dtype=np.int32)[order],
-        pix=pix.astype(np.int32),
+        pix=local(bid_e, row[order], col[order]),
         cov=np.asarray(coverage.weight, dtype=np.float64)[order],
         offgrid=np.asarray(coverage.offgrid, dtype=np.float64),
+        run_starts=run_starts,
+        run_unit=ru[src][run_order].astype(np.int32),
+        run_pix=local(bid_r, pr[run_order], pa[run_order]),
+        run_len=(pb - pa)[run_order].astype(np.int32),
     )
