@@ -429,7 +429,7 @@ def _open_source(recipe, name, layer):
     from covextract.io.rasters import open_layer
 
     if layer.bands:
-        from covextract.derive.bands import BandMathSource
+        from covextract.derive.bands import BandMathSource, ClippedSource
         from covextract.derive.expression import parse_expression
 
         bands = {
@@ -449,7 +449,7 @@ def _open_source(recipe, name, layer):
         )
         src = BandMathSource(bands, expr)
         if layer.ceiling is not None or layer.valid_range is not None:
-            src = _Clipped(src, layer.valid_range, layer.ceiling)
+            src = ClippedSource(src, layer.valid_range, layer.ceiling)
         return src
     return open_layer(
         recipe.resolve(layer.file),
@@ -462,27 +462,6 @@ def _open_source(recipe, name, layer):
         name=name,
         ceiling=layer.ceiling,
     )
-
-
-class _Clipped:
-    """valid_range and ceiling applied to a derived layer's values."""
-
-    def __init__(self, source, valid_range, ceiling) -> None:
-        self.source, self.valid_range, self.ceiling = source, valid_range, ceiling
-        self.grid, self.path = source.grid, source.path
-        self.nodata, self.scale, self.offset = (), 1.0, 0.0
-
-    def read_block(self, window):
-        return self.source.read_block(window)
-
-    def to_values(self, stored):
-        values, valid = self.source.to_values(stored)
-        if self.valid_range is not None:
-            with np.errstate(invalid="ignore"):
-                valid = valid & (values >= self.valid_range[0]) & (values <= self.valid_range[1])
-        if self.ceiling is not None:
-            values = np.where(valid, np.minimum(values, self.ceiling), values)
-        return values, valid
 
 
 def _timed_text(cp) -> str:
@@ -628,18 +607,8 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
         dates = parse_record_dates(
             plan.table.frame, t["date_column"], plan.recipe.study.date_format
         )
-        starts = np.array([p.start for p in periods], dtype="datetime64[D]")
-        ends = np.array([p.end for p in periods], dtype="datetime64[D]")
-        m = len(periods)
         for s, col in zip(cp.stats, cp.columns, strict=False):
-            long = pd.DataFrame(
-                {
-                    "unit": np.repeat(np.arange(n), m),
-                    "start": np.tile(starts, n),
-                    "end": np.tile(ends, n),
-                    "value": vals[s.name].reshape(-1),
-                }
-            )
+            long = _long(vals[s.name], periods)
             out = window_values(
                 long,
                 dates.to_numpy(),
@@ -681,18 +650,21 @@ def _run_change(cp, units, geoms, cache, advance, threads, client):
         threads=threads,
         client=client,
     )
-    res = zonal_units(ChangeSource(later, earlier), geoms, cp.stats, progress=advance, **kw)
+    # one pass for the requested statistics and the mean change the relative change needs
+    stats = list(cp.stats)
+    if not any(s.name == "mean" for s in stats):
+        stats.append(parse_stat("mean"))
+    res = zonal_units(ChangeSource(later, earlier), geoms, stats, progress=advance, **kw)
     base = zonal_units(
         ChangeSource(later, earlier, part="earlier"), geoms, [parse_stat("mean")], **kw
     )
-    change_mean = zonal_units(ChangeSource(later, earlier), geoms, [parse_stat("mean")], **kw)
     columns = {}
     for s, col in zip(cp.stats, cp.columns, strict=False):
         columns[col] = res.values[s.name]
     with np.errstate(invalid="ignore", divide="ignore"):
-        rel = change_mean.values["mean"] / base.values["mean"]
+        rel = res.values["mean"] / base.values["mean"]
     columns[cp.columns[-1]] = np.where(np.isfinite(rel), rel, np.nan)
-    res.weights_builds += base.weights_builds + change_mean.weights_builds
+    res.weights_builds += base.weights_builds
     panel = pd.DataFrame(columns=["unit_id", "column", "period_start", "period_end", "value"])
     return res, columns, panel.iloc[0:0]
 
@@ -917,16 +889,11 @@ def _missing_column(name, columns, key):
 
 
 def _count_outside(units, grid) -> int:
-    import shapely
+    """Units with a geometry whose bounding box misses the grid."""
+    from covextract.engine.zonal import _geometry_flags
 
-    geoms = units.to_crs(grid.crs)
-    arr = np.array([g for g in geoms if g is not None], dtype=object)
-    if arr.size == 0:
-        return 0
-    b = shapely.bounds(arr)
-    gx0, gy0, gx1, gy1 = grid.bounds
-    inside = (b[:, 0] <= gx1) & (b[:, 2] >= gx0) & (b[:, 1] <= gy1) & (b[:, 3] >= gy0)
-    return int((~inside).sum())
+    has, meets = _geometry_flags(units.to_crs(grid.crs), grid, len(units))
+    return int((has & ~meets).sum())
 
 
 # ----------------------------------------------------------------------- check
@@ -1279,7 +1246,7 @@ def _nodata_text(src, layer) -> str:
     """How missing values are handled, for the codebook."""
     if not layer.bands:
         return _source_text(src)
-    inner = src.source if isinstance(src, _Clipped) else src
+    inner = getattr(src, "source", src)
     parts = [f"band {name}: {_source_text(b)}" for name, b in inner.bands.items()]
     text = (
         f"index {layer.index or layer.expression!r} computed per pixel after each band's scale "

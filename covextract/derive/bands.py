@@ -7,7 +7,7 @@ import numpy as np
 from covextract.derive.expression import Expression
 from covextract.errors import RasterError
 
-__all__ = ["BandMathSource"]
+__all__ = ["BandMathSource", "ClippedSource", "WeightedSource"]
 
 
 class BandMathSource:
@@ -94,3 +94,30 @@ class WeightedSource:
         f, fm = self.weight.to_values(stored[1])
         ok = m & fm & (f >= 0)
         return v, ok, np.where(ok, f, 0.0)
+
+
+class ClippedSource:
+    """``valid_range`` and ``ceiling`` applied to a derived layer's values (band math).
+
+    Single rasters get both from :class:`covextract.io.rasters.RasterSource`
+    itself; this wrapper gives derived layers the same rules.
+    """
+
+    def __init__(self, source, valid_range, ceiling) -> None:
+        self.source, self.valid_range, self.ceiling = source, valid_range, ceiling
+        self.grid, self.path = source.grid, source.path
+        self.nodata, self.scale, self.offset = (), 1.0, 0.0
+
+    def read_block(self, window):
+        """The wrapped layer's stored values."""
+        return self.source.read_block(window)
+
+    def to_values(self, stored):
+        """Values outside ``valid_range`` become invalid; values above ``ceiling`` are set to it."""
+        values, valid = self.source.to_values(stored)
+        if self.valid_range is not None:
+            with np.errstate(invalid="ignore"):
+                valid = valid & (values >= self.valid_range[0]) & (values <= self.valid_range[1])
+        if self.ceiling is not None:
+            values = np.where(valid, np.minimum(values, self.ceiling), values)
+        return values, valid

@@ -129,6 +129,9 @@ class UnitSet:
         every item length-prefixed, so two unit sets share a fingerprint
         exactly when they would give the same coverage weights.
         """
+        cached = self.__dict__.get("_fingerprint")
+        if cached is not None:  # every covariate and period asks; hash the WKB once
+            return cached
         h = hashlib.sha256(b"covextract-units-1\0")
 
         def put(data: bytes | None) -> None:
@@ -154,7 +157,9 @@ class UnitSet:
             put(item)
         put(self.crs.to_wkt().encode())
         put(json.dumps(self.params, sort_keys=True, default=str).encode())
-        return h.hexdigest()
+        digest = h.hexdigest()
+        self.__dict__["_fingerprint"] = digest
+        return digest
 
     def to_crs(self, crs) -> np.ndarray:
         """Reproject the geometries to ``crs``.
