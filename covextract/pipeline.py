@@ -28,7 +28,17 @@ from covextract.errors import (
 )
 from covextract.stats.names import StatName, parse_stat
 
-__all__ = ["Plan", "CovariatePlan", "RunResult", "plan_recipe", "check_recipe", "run"]
+__all__ = [
+    "Plan",
+    "CovariatePlan",
+    "CovariateOutcome",
+    "RunResult",
+    "plan_recipe",
+    "check_recipe",
+    "compute_covariate",
+    "input_files",
+    "run",
+]
 
 
 def _unit_qa_codes() -> dict:
@@ -531,19 +541,18 @@ def _timed_text(cp) -> str:
     return text
 
 
-def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
-    """Per-period statistics of a series covariate, its panel rows and window columns."""
-    from covextract.derive.time import window_values
-    from covextract.engine.zonal import ZonalResult
-    from covextract.timed import long_panel, parse_record_dates, series_statistics
-
+def timed_periods(cp) -> list:
+    """The periods whose per-period statistics a series covariate needs (not ``change:``)."""
     t = cp.timed
-    if t["kind"] == "change":
-        return _run_change(cp, units, geoms, cache, advance, threads, client)
-    periods = t.get("all_periods") or t["periods"]
-    n = len(geoms)
-    vals, qa_pp, builds = series_statistics(
-        t["series"],
+    return list(t.get("all_periods") or t["periods"])
+
+
+def _timed_period_stats(cp, units, geoms, periods, cache, advance, threads, client):
+    """Per-period statistics of a series covariate: ``(values, qa_per_period, builds)``."""
+    from covextract.timed import series_statistics
+
+    return series_statistics(
+        cp.timed["series"],
         periods,
         geoms,
         cp.stats,
@@ -556,6 +565,17 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
         client=client,
         progress=advance,
     )
+
+
+def _timed_assemble(cp, plan, units, periods, vals, qa_pp):
+    """Panel rows and window, trend or anomaly columns from the per-period statistics."""
+    from covextract.derive.time import window_values
+    from covextract.engine.zonal import ZonalResult
+    from covextract.timed import long_panel, parse_record_dates
+
+    t = cp.timed
+    n = len(units)
+    vals = {k: np.array(v, dtype=np.float64, copy=True) for k, v in vals.items()}
     # Codes that describe the unit's place on the grid hold for every period; codes about
     # a period's pixels (nodata, low valid share) would wrongly flag records whose window
     # does not include that period, and missing periods in a window are window_gap.
@@ -628,7 +648,6 @@ def _run_timed(cp, plan, units, geoms, cache, advance, threads, client):
                 qa[i] = list(dict.fromkeys(qa[i] + list(codes)))
         valid = np.isfinite(columns[cp.columns[0]]).astype(float)
     res = ZonalResult(values={}, qa=qa, valid_share=valid)
-    res.weights_builds = builds
     return res, columns, panel
 
 
@@ -999,77 +1018,174 @@ def run(
             client.close()
 
 
-def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client) -> RunResult:
-    from covextract.engine.zonal import QA_CODES, estimate_entries, zonal_units
-    from covextract.outputs.table import augment_table
+@dataclass
+class CovariateOutcome:
+    """What one covariate produced, before its QA column and codebook rows are made.
 
-    columns: dict = {}
-    codebook: list[dict] = []
-    qa_counts: dict = {}
-    reporter = _progress_factory(progress)
-    n_missing = {}
-    weights_built = 0
-    workers: set = set()
-    summary_extra: dict = {}
-    panels: list = []
-    for cp in plan.covariates:
-        units = plan.unit_sets[cp.unit_key]
-        src = plan.sources[cp.layer_name]
-        weight_by = getattr(cp.spec, "weight_by", None)
-        if weight_by:
-            from covextract.derive.bands import WeightedSource
+    ``columns`` maps new column names to per-unit arrays (unit order of the
+    plan); ``zonal_qa`` holds the engine's QA codes per unit; ``panel`` the
+    long-panel rows of a series covariate (None for the others). ``fit`` and
+    ``dark_zones`` carry what a proxy covariate learnt (its codebook and summary
+    need them).
+    """
 
-            src = WeightedSource(src, plan.sources[weight_by])
-        geoms = units.to_crs(src.grid.crs)
-        est = int(estimate_entries(geoms, src.grid).sum())
-        n_blocks = len(src.grid.block_windows())
-        advance = reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
-        if cp.timed is not None:
-            res, timed_values, panel = _run_timed(
-                cp, plan, units, geoms, cache, advance, threads, client
-            )
-            columns.update(timed_values)
-            panels.append(panel)
-        elif cp.proxy is not None:
-            res, proxy_values = _run_proxy(cp, src, geoms, cache, units, advance, threads, client)
-            columns.update(proxy_values)
-            summary_extra[cp.prefix] = cp.proxy.get("fit", {})
+    columns: dict
+    zonal_qa: list
+    valid_share: np.ndarray
+    panel: pd.DataFrame | None = None
+    weights_builds: int = 0
+    workers: set = field(default_factory=set)
+    unknown_codes: list = field(default_factory=list)
+    fit: dict | None = None
+    dark_zones: list | None = None
+
+
+def covariate_source(plan, cp):
+    """The source a covariate reduces: its layer, weighted by ``weight_by`` when set."""
+    src = plan.sources[cp.layer_name]
+    weight_by = getattr(cp.spec, "weight_by", None)
+    if weight_by:
+        from covextract.derive.bands import WeightedSource
+
+        src = WeightedSource(src, plan.sources[weight_by])
+    return src
+
+
+def _advance_for(reporter, cp, src, geoms):
+    from covextract.engine.zonal import estimate_entries
+
+    est = int(estimate_entries(geoms, src.grid).sum())
+    n_blocks = len(src.grid.block_windows())
+    return reporter(f"{cp.prefix} ({cp.layer_name})", n_blocks if est else 0)
+
+
+def compute_covariate(
+    plan, cp, cache, *, reporter, threads=None, client=None, period_values=None
+) -> CovariateOutcome:
+    """Compute one covariate of a plan.
+
+    Parameters
+    ----------
+    plan : Plan
+    cp : CovariatePlan
+    cache : WeightCache
+    reporter : callable
+        ``reporter(description, total_blocks) -> advance`` (or None).
+    period_values : callable, optional
+        For a series covariate (not ``change:``): ``period_values(periods,
+        compute) -> (values, qa_per_period, builds)`` supplies the per-period
+        statistics, calling ``compute(periods)`` for those it does not hold
+        (the refresh keeps earlier periods on disk). Default: compute all.
+    """
+    from covextract.engine.zonal import zonal_units
+
+    units = plan.unit_sets[cp.unit_key]
+    src = covariate_source(plan, cp)
+    geoms = units.to_crs(src.grid.crs)
+    advance = _advance_for(reporter, cp, src, geoms)
+    if cp.timed is not None:
+        if cp.timed["kind"] == "change":
+            res, values, panel = _run_change(cp, units, geoms, cache, advance, threads, client)
         else:
-            res = zonal_units(
-                src,
-                geoms,
-                list(cp.spec.stats) if cp.categorical is not None else cp.stats,
-                rule=cp.rule,
-                area_weighting="on" if weight_by else cp.area_weighting,
-                threshold=cp.threshold,
-                cache=cache,
-                units_fingerprint=units.fingerprint(),
-                progress=advance,
-                threads=threads,
-                client=client,
-                categorical=_engine_categorical(cp),
-            )
-            for s, col in zip(cp.stats, cp.columns, strict=True):
-                columns[col] = res.values[s[0] if cp.categorical is not None else s.name]
-        weights_built += res.weights_builds
-        if res.unknown_codes:
+
+            def compute(periods):
+                return _timed_period_stats(
+                    cp, units, geoms, periods, cache, advance, threads, client
+                )
+
+            periods = timed_periods(cp)
+            if period_values is None:
+                vals, qa_pp, builds = compute(periods)
+            else:
+                vals, qa_pp, builds = period_values(periods, compute)
+            res, values, panel = _timed_assemble(cp, plan, units, periods, vals, qa_pp)
+            res.weights_builds = builds
+        outcome = CovariateOutcome(values, res.qa, res.valid_share, panel=panel)
+    elif cp.proxy is not None:
+        res, values = _run_proxy(cp, src, geoms, cache, units, advance, threads, client)
+        outcome = CovariateOutcome(
+            values,
+            res.qa,
+            res.valid_share,
+            fit=cp.proxy.get("fit"),
+            dark_zones=cp.proxy.get("dark_zones"),
+        )
+    else:
+        weight_by = getattr(cp.spec, "weight_by", None)
+        res = zonal_units(
+            src,
+            geoms,
+            list(cp.spec.stats) if cp.categorical is not None else cp.stats,
+            rule=cp.rule,
+            area_weighting="on" if weight_by else cp.area_weighting,
+            threshold=cp.threshold,
+            cache=cache,
+            units_fingerprint=units.fingerprint(),
+            progress=advance,
+            threads=threads,
+            client=client,
+            categorical=_engine_categorical(cp),
+        )
+        values = {
+            col: res.values[s[0] if cp.categorical is not None else s.name]
+            for s, col in zip(cp.stats, cp.columns, strict=True)
+        }
+        outcome = CovariateOutcome(values, res.qa, res.valid_share)
+    outcome.weights_builds = res.weights_builds
+    outcome.workers = set(res.workers)
+    outcome.unknown_codes = list(res.unknown_codes or [])
+    if advance is not None:
+        advance(0, done=True)
+    return outcome
+
+
+class _Assembly:
+    """Collects covariate outcomes in plan order and turns them into the outputs."""
+
+    def __init__(self, plan) -> None:
+        self.plan = plan
+        self.columns: dict = {}
+        self.codebook: list[dict] = []
+        self.qa_counts: dict = {}
+        self.n_missing: dict = {}
+        self.weights_built = 0
+        self.workers: set = set()
+        self.fits: dict = {}
+        self.panels: list = []
+
+    def add(self, cp, outcome: CovariateOutcome) -> None:
+        from covextract.engine.zonal import QA_CODES
+
+        plan = self.plan
+        units = plan.unit_sets[cp.unit_key]
+        if cp.proxy is not None:
+            # the codebook reads what the proxy learnt (also when it was loaded, not computed)
+            if outcome.fit is not None:
+                cp.proxy["fit"] = outcome.fit
+            if outcome.dark_zones is not None:
+                cp.proxy["dark_zones"] = outcome.dark_zones
+            self.fits[cp.prefix] = outcome.fit or {}
+        self.columns.update(outcome.columns)
+        if outcome.panel is not None:
+            self.panels.append(outcome.panel)
+        self.weights_built += outcome.weights_builds
+        self.workers |= outcome.workers
+        if outcome.unknown_codes:
             warnings.warn(
                 f"layer {cp.layer_name!r} holds codes not in its class table "
-                f"({', '.join(_code_text(c) for c in res.unknown_codes[:10])}); they are counted "
-                f"as 'other' in {cp.prefix}_share_other. Add them to classes: to name them.",
+                f"({', '.join(_code_text(c) for c in outcome.unknown_codes[:10])}); they are "
+                f"counted as 'other' in {cp.prefix}_share_other. Add them to classes: to name "
+                "them.",
                 UnknownClassWarning,
                 stacklevel=_user_stacklevel(),
             )
-        if advance is not None:
-            advance(0, done=True)
-        workers |= res.workers
         qa = []
-        for unit_codes, zonal_codes in zip(units.qa, res.qa, strict=True):
+        for unit_codes, zonal_codes in zip(units.qa, outcome.zonal_qa, strict=True):
             codes = list(dict.fromkeys(list(unit_codes) + list(zonal_codes)))
             qa.append(";".join(codes))
         if cp.columns:
-            columns[cp.qa_column] = qa
-        outside = sum("outside_layer" in q for q in res.qa)
+            self.columns[cp.qa_column] = qa
+        outside = sum("outside_layer" in q for q in outcome.zonal_qa)
         if outside:
             warnings.warn(
                 f"{outside} of {len(units)} units lie wholly outside layer "
@@ -1077,35 +1193,61 @@ def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client)
                 UnitOutsideLayerWarning,
                 stacklevel=_user_stacklevel(),
             )
-        n_missing[cp.prefix] = int(np.sum(res.valid_share == 0))
+        self.n_missing[cp.prefix] = int(np.sum(np.asarray(outcome.valid_share) == 0))
         for q in qa:
             for code in filter(None, q.split(";")):
-                qa_counts[code] = qa_counts.get(code, 0) + 1
-        codebook.extend(_codebook_rows(recipe, cp, units, plan.sources[cp.layer_name], QA_CODES))
-    table = plan.table
-    # Numbers stay numbers in the returned table and in Parquet/GeoPackage outputs;
-    # write_table turns them into round-trip text only for a CSV file.
-    augmented = augment_table(table.frame, columns, as_text=False)
-    drop = [c for c in recipe.output.drop if c in augmented.columns]
-    written = augmented.drop(columns=drop)
-    outputs = {}
-    panel = pd.concat(panels, ignore_index=True) if panels else None
-    if write:
-        outputs = _write_outputs(plan, written, codebook, started, panel=panel)
-    summary = {
-        "units": len(table.frame),
-        "layers": sorted({cp.layer_name for cp in plan.covariates}),
-        "columns": list(columns),
-        "units_without_values": n_missing,
-        "qa_counts": qa_counts,
-        "weights_built": weights_built,
-        "weights_from_cache": cache.hits,
-        "workers": sorted(workers),
-        "proxy_fits": {k: v for k, v in summary_extra.items() if v},
-    }
-    result = RunResult(written, list(columns), codebook, outputs, summary)
-    result.panel = panel
-    return result
+                self.qa_counts[code] = self.qa_counts.get(code, 0) + 1
+        self.codebook.extend(
+            _codebook_rows(plan.recipe, cp, units, plan.sources[cp.layer_name], QA_CODES)
+        )
+
+    def finish(self, *, write, started, cache, manifest_extra=None, hashes=None) -> RunResult:
+        from covextract.outputs.table import augment_table
+
+        plan, recipe = self.plan, self.plan.recipe
+        table = plan.table
+        # Numbers stay numbers in the returned table and in Parquet/GeoPackage outputs;
+        # write_table turns them into round-trip text only for a CSV file.
+        augmented = augment_table(table.frame, self.columns, as_text=False)
+        drop = [c for c in recipe.output.drop if c in augmented.columns]
+        written = augmented.drop(columns=drop)
+        outputs = {}
+        panel = pd.concat(self.panels, ignore_index=True) if self.panels else None
+        if write:
+            outputs = _write_outputs(
+                plan,
+                written,
+                self.codebook,
+                started,
+                panel=panel,
+                manifest_extra=manifest_extra,
+                hashes=hashes,
+            )
+        summary = {
+            "units": len(table.frame),
+            "layers": sorted({cp.layer_name for cp in plan.covariates}),
+            "columns": list(self.columns),
+            "units_without_values": self.n_missing,
+            "qa_counts": self.qa_counts,
+            "weights_built": self.weights_built,
+            "weights_from_cache": cache.hits,
+            "workers": sorted(self.workers),
+            "proxy_fits": {k: v for k, v in self.fits.items() if v},
+        }
+        result = RunResult(written, list(self.columns), self.codebook, outputs, summary)
+        result.panel = panel
+        return result
+
+
+def _run_plan(plan, recipe, cache, started, *, write, progress, threads, client) -> RunResult:
+    reporter = _progress_factory(progress)
+    assembly = _Assembly(plan)
+    for cp in plan.covariates:
+        outcome = compute_covariate(
+            plan, cp, cache, reporter=reporter, threads=threads, client=client
+        )
+        assembly.add(cp, outcome)
+    return assembly.finish(write=write, started=started, cache=cache)
 
 
 def _progress_factory(progress):
@@ -1555,23 +1697,13 @@ def _q_text(q):
     return str(int(q)) if float(q).is_integer() else str(q)
 
 
-def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started, panel=None) -> dict:
-    from covextract.outputs.codebook import write_codebook
-    from covextract.outputs.manifest import write_manifest
-    from covextract.outputs.table import table_format, write_table
+def input_files(plan: Plan) -> list[dict]:
+    """Every input file of a plan as ``{"role", "path"}``, in a fixed order.
 
-    paths = plan.output_paths
+    The recipe, the study table, the boundaries, each layer's files (one per
+    period for a series) and the zone and totals files of population proxies.
+    """
     recipe = plan.recipe
-    geometry = crs = None
-    if table_format(paths["table"]) == "gpkg":
-        geometry, crs = _gpkg_geometry(plan)
-    write_table(table, paths["table"], geometry=geometry, crs=crs)
-    write_codebook(
-        codebook,
-        paths["codebook"],
-        markdown_path=paths["codebook_md"],
-        title=f"Codebook for {paths['table'].name}",
-    )
     inputs = [{"role": "recipe", "path": recipe.source_file}] if recipe.source_file else []
     inputs.append({"role": "study_table", "path": plan.table.path})
     if recipe.units is not None and recipe.units.boundaries is not None:
@@ -1584,6 +1716,57 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started, panel=Non
             continue
         for role, path in _layer_files(recipe, name):
             inputs.append({"role": role, "path": path})
+    for cp in plan.covariates:
+        spec = getattr(cp.spec, "reallocate", None)
+        if cp.proxy is not None and spec is not None:
+            inputs.append({"role": f"zones:{cp.prefix}", "path": recipe.resolve(spec.zones.file)})
+            inputs.append({"role": f"totals:{cp.prefix}", "path": recipe.resolve(spec.totals.file)})
+    seen, unique = set(), []
+    for item in inputs:  # a series cube lists one file for every period
+        key = (item["role"], str(item["path"]))
+        if key not in seen:
+            seen.add(key)
+            unique.append(item)
+    return unique
+
+
+def _write_outputs(
+    plan: Plan, table: pd.DataFrame, codebook, started, panel=None, manifest_extra=None, hashes=None
+) -> dict:
+    """Write panel, codebook, table and — last — the manifest, each file atomically.
+
+    ``hashes(path) -> sha256`` may supply input fingerprints (the refresh keeps
+    them in its ledger so unchanged inputs are not read again).
+    """
+    from covextract.crashpoints import crash_point
+    from covextract.outputs.codebook import write_codebook
+    from covextract.outputs.manifest import write_manifest
+    from covextract.outputs.table import table_format, write_table
+
+    paths = plan.output_paths
+    recipe = plan.recipe
+    geometry = crs = None
+    if table_format(paths["table"]) == "gpkg":
+        geometry, crs = _gpkg_geometry(plan)
+    outputs = []
+    result_paths = {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
+    if panel is not None and recipe.output.panel is not None:
+        from covextract.timed import write_panel
+
+        folder = recipe.resolve(recipe.output.panel)
+        outputs += write_panel(folder, panel)
+        result_paths["panel"] = folder
+        crash_point("after_panel")
+    write_codebook(
+        codebook,
+        paths["codebook"],
+        markdown_path=paths["codebook_md"],
+        title=f"Codebook for {paths['table'].name}",
+    )
+    crash_point("after_codebook")
+    write_table(table, paths["table"], geometry=geometry, crs=crs)
+    crash_point("after_table")
+    outputs = [paths["table"], paths["codebook"], paths["codebook_md"], *outputs]
     layers = {
         name: {
             "crs": src.grid.crs.to_string(),
@@ -1594,14 +1777,9 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started, panel=Non
         }
         for name, src in plan.sources.items()
     }
-    outputs = [paths["table"], paths["codebook"], paths["codebook_md"]]
-    result_paths = {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
-    if panel is not None and recipe.output.panel is not None:
-        from covextract.timed import write_panel
-
-        folder = recipe.resolve(recipe.output.panel)
-        outputs += write_panel(folder, panel)
-        result_paths["panel"] = folder
+    inputs = input_files(plan)
+    if hashes is not None:
+        inputs = [{**item, "sha256": hashes(item["path"])} for item in inputs]
     write_manifest(
         paths["manifest"],
         recipe_fingerprint=recipe.fingerprint,
@@ -1610,7 +1788,9 @@ def _write_outputs(plan: Plan, table: pd.DataFrame, codebook, started, panel=Non
         outputs=outputs,
         layers=layers,
         started=started,
+        extra=manifest_extra,
     )
+    crash_point("after_manifest")
     return result_paths
 
 

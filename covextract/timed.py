@@ -8,6 +8,8 @@ record's own window with :func:`covextract.derive.time.window_values`.
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 
@@ -157,27 +159,40 @@ def long_panel(ids, column: str, periods, values: np.ndarray) -> pd.DataFrame:
     )
 
 
+_PANEL_FILE = re.compile(r"^\d{4}-\d{2}-\d{2}\.parquet$")
+
+
 def write_panel(folder, panel: pd.DataFrame) -> list:
     """Write the long panel as one Parquet file per period (atomically), return the files.
 
     Files are named after the period's first day (``2021-03-01.parquet``), so a
-    new period is a new file and earlier periods are never rewritten by it.
+    new period is a new file. A period file whose bytes would not change is
+    left untouched (same content, same modification time), and period files of
+    this naming pattern that the panel no longer holds are removed, so the
+    folder always shows exactly the panel of the last run.
     """
+    import io
     from pathlib import Path
 
-    from covextract.io.writers import atomic_write
+    from covextract.io.writers import atomic_write_bytes
 
     folder = Path(folder)
     written = []
-    if panel.empty:
-        return written
-    panel = panel.sort_values(["period_start", "column", "unit_id"], kind="stable")
-    for start, part in panel.groupby("period_start", sort=True):
-        name = f"{pd.Timestamp(start).date().isoformat()}.parquet"
-        path = folder / name
-        frame = part.reset_index(drop=True)
-        atomic_write(path, lambda tmp, f=frame: f.to_parquet(tmp, index=False, engine="pyarrow"))
-        written.append(path)
+    if not panel.empty:
+        panel = panel.sort_values(["period_start", "column", "unit_id"], kind="stable")
+        for start, part in panel.groupby("period_start", sort=True):
+            path = folder / f"{pd.Timestamp(start).date().isoformat()}.parquet"
+            buffer = io.BytesIO()
+            part.reset_index(drop=True).to_parquet(buffer, index=False, engine="pyarrow")
+            data = buffer.getvalue()
+            if not (path.is_file() and path.read_bytes() == data):
+                atomic_write_bytes(path, data)
+            written.append(path)
+    if folder.is_dir():
+        keep = {p.name for p in written}
+        for old in folder.iterdir():
+            if _PANEL_FILE.match(old.name) and old.name not in keep:
+                old.unlink()
     return written
 
 

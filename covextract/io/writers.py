@@ -12,6 +12,7 @@ import tempfile
 from collections.abc import Callable
 from pathlib import Path
 
+from covextract.crashpoints import crash_point
 from covextract.errors import OutputError
 
 __all__ = ["atomic_write", "atomic_write_text", "atomic_write_bytes"]
@@ -58,6 +59,7 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
             os.fsync(fh.fileno())
         # mkstemp creates 0600; give the file the mode a plain open() would (umask)
         os.chmod(tmp_path, 0o666 & ~_umask())
+        crash_point(f"before_rename:{path.name}")
         os.replace(tmp_path, path)
     except BaseException:
         with contextlib.suppress(OSError):

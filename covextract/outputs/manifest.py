@@ -91,7 +91,8 @@ def write_manifest(
     Parameters
     ----------
     inputs : list of dict
-        ``{"role", "path"}`` for every input file; fingerprints are added here.
+        ``{"role", "path"}`` for every input file; fingerprints are added here
+        unless an item already carries its ``"sha256"``.
     outputs : list of path
         Files written by the run; their fingerprints are recorded.
     layers : dict
@@ -108,7 +109,7 @@ def write_manifest(
             {
                 **item,
                 "path": str(item["path"]),
-                "sha256": file_sha256(item["path"]),
+                "sha256": item.get("sha256") or file_sha256(item["path"]),
                 "bytes": Path(item["path"]).stat().st_size,
             }
             for item in inputs

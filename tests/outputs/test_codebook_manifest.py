@@ -177,6 +177,8 @@ def test_manifest_fingerprints_every_input(demo_run, manifest):
         "layer:veg.red",
         "layer:veg.nir",
         "layer:pop",
+        "zones:pop_alloc",
+        "totals:pop_alloc",
     }
     files = {
         "recipe": "recipe.yaml",
@@ -189,6 +191,8 @@ def test_manifest_fingerprints_every_input(demo_run, manifest):
         "layer:veg.red": "red_2021.tif",
         "layer:veg.nir": "nir_2021.tif",
         "layer:pop": "population_2021.tif",
+        "zones:pop_alloc": "districts.gpkg",
+        "totals:pop_alloc": "district_totals.csv",
     }
     for role, name in files.items():
         path = folder / name
