@@ -52,7 +52,7 @@ __all__ = [
 LEDGER_NAME = "ledger.sqlite"
 """File name of the ledger inside the state folder."""
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 """Layout version stored in ``PRAGMA user_version``; bump it when the tables change."""
 
 _SCHEMA = """
@@ -73,6 +73,12 @@ CREATE TABLE runs (
     result TEXT,
     summary TEXT
 );
+CREATE TABLE files (
+    path TEXT PRIMARY KEY,
+    size INTEGER NOT NULL,
+    mtime_ns INTEGER NOT NULL,
+    sha256 TEXT NOT NULL
+);
 """
 
 _TABLES = {
@@ -86,6 +92,7 @@ _TABLES = {
         "computed_at",
     ],
     "runs": ["id", "started", "finished", "result", "summary"],
+    "files": ["path", "size", "mtime_ns", "sha256"],
 }
 
 
@@ -472,6 +479,43 @@ class Ledger:
             summary=json.loads(summary) if summary is not None else None,
         )
 
+    # ----------------------------------------------------------------- files
+    def file_hash(self, path) -> str:
+        """SHA-256 of a file's bytes, read again only when its size or modification time changed.
+
+        The ``files`` table keeps ``(path, size, mtime_ns, sha256)``; a file
+        whose size and modification time (nanoseconds) match its row is not
+        read (the test of make and rsync, common practice). The row is
+        written in its own transaction, so a hash survives a run that dies
+        later.
+
+        Parameters
+        ----------
+        path : str or Path
+            A file (a folder is hashed over its files, see
+            :func:`covextract.outputs.manifest.file_sha256`).
+        """
+        from covextract.outputs.manifest import file_sha256
+
+        path = Path(path)
+        key = str(path.resolve())
+        try:
+            st = path.stat()
+        except OSError as exc:
+            raise OutputError(f"cannot read the input file {path}: {exc}") from exc
+        found = self._conn.execute(
+            "SELECT size, mtime_ns, sha256 FROM files WHERE path = ?", (key,)
+        ).fetchone()
+        if found is not None and found[0] == st.st_size and found[1] == st.st_mtime_ns:
+            return found[2]
+        digest = file_sha256(path)
+        with self.transaction():
+            self._conn.execute(
+                "INSERT OR REPLACE INTO files VALUES (?, ?, ?, ?)",
+                (key, st.st_size, st.st_mtime_ns, digest),
+            )
+        return digest
+
     # ----------------------------------------------------------------- check
     def check(self) -> None:
         """Run ``PRAGMA integrity_check`` and the schema check.
@@ -504,8 +548,9 @@ class Ledger:
 
         The new database is written to a temporary file in the same folder,
         then moved over ``path`` with :func:`os.replace`, so a crash leaves
-        either the old file or the complete new one. The ``runs`` table
-        starts empty. Close any open :class:`Ledger` on ``path`` first.
+        either the old file or the complete new one. The ``runs`` and
+        ``files`` tables start empty (file hashes are taken again). Close any
+        open :class:`Ledger` on ``path`` first.
 
         Parameters
         ----------

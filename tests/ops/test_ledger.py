@@ -15,7 +15,7 @@ import sqlite3
 
 import pytest
 
-from covextract.errors import CovextractError
+from covextract.errors import CovextractError, OutputError
 from covextract.io.series import Period
 from covextract.ops.ledger import (
     SCHEMA_VERSION,
@@ -301,3 +301,39 @@ def test_runs_table(ledger):
     assert dt.datetime.fromisoformat(last.started) <= dt.datetime.fromisoformat(last.finished)
     with pytest.raises(KeyError, match="no run with id 999"):
         ledger.finish_run(999, "error", {})
+
+
+def test_file_hash_reads_a_file_again_only_when_it_changed(tmp_path, monkeypatch):
+    import hashlib
+    import os
+
+    import covextract.outputs.manifest as manifest
+
+    data = tmp_path / "rain_2021-03.tif"
+    data.write_bytes(b"first content")
+    calls = []
+    real = manifest.file_sha256
+    monkeypatch.setattr(manifest, "file_sha256", lambda p: calls.append(p) or real(p))
+    with Ledger(tmp_path / "state") as ledger:
+        # Reference: hashlib's SHA-256 of the bytes.
+        assert ledger.file_hash(data) == hashlib.sha256(b"first content").hexdigest()
+        assert ledger.file_hash(data) == hashlib.sha256(b"first content").hexdigest()
+        assert len(calls) == 1  # the second call trusted size and modification time
+        data.write_bytes(b"other content, longer")
+        assert ledger.file_hash(data) == hashlib.sha256(b"other content, longer").hexdigest()
+        assert len(calls) == 2
+        # same size, new modification time: read again
+        st = data.stat()
+        data.write_bytes(b"OTHER content, longer")
+        os.utime(data, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+        assert ledger.file_hash(data) == hashlib.sha256(b"OTHER content, longer").hexdigest()
+        assert len(calls) == 3
+    with Ledger(tmp_path / "state") as again:  # the hashes persist across runs
+        assert again.file_hash(data) == hashlib.sha256(b"OTHER content, longer").hexdigest()
+        assert len(calls) == 3
+
+
+def test_file_hash_of_a_missing_file_says_which(tmp_path):
+    with Ledger(tmp_path / "state") as ledger:
+        with pytest.raises(OutputError, match="cannot read the input file .*gone.tif"):
+            ledger.file_hash(tmp_path / "gone.tif")
