@@ -498,16 +498,14 @@ class Ledger:
         from covextract.outputs.manifest import file_sha256
 
         path = Path(path)
-        key = str(path.resolve())
         try:
             st = path.stat()
         except OSError as exc:
             raise OutputError(f"cannot read the input file {path}: {exc}") from exc
-        found = self._conn.execute(
-            "SELECT size, mtime_ns, sha256 FROM files WHERE path = ?", (key,)
-        ).fetchone()
-        if found is not None and found[0] == st.st_size and found[1] == st.st_mtime_ns:
-            return found[2]
+        known = self.recorded_hash(path)
+        if known is not None:
+            return known
+        key = str(path.resolve())
         digest = file_sha256(path)
         with self.transaction():
             self._conn.execute(
@@ -515,6 +513,23 @@ class Ledger:
                 (key, st.st_size, st.st_mtime_ns, digest),
             )
         return digest
+
+    def recorded_hash(self, path) -> str | None:
+        """The recorded SHA-256 if the file's size and modification time still match, else None.
+
+        Never reads the file (``status`` uses it to stay cheap).
+        """
+        path = Path(path)
+        try:
+            st = path.stat()
+        except OSError:
+            return None
+        found = self._conn.execute(
+            "SELECT size, mtime_ns, sha256 FROM files WHERE path = ?", (str(path.resolve()),)
+        ).fetchone()
+        if found is not None and found[0] == st.st_size and found[1] == st.st_mtime_ns:
+            return found[2]
+        return None
 
     # ----------------------------------------------------------------- check
     def check(self) -> None:

@@ -1,0 +1,316 @@
+"""Monthly refresh: only what is new or changed is computed, and the result equals a full run.
+
+The scenario is the invented demo district (36 monthly rainfall and NDVI
+rasters). "Equals a full run" is checked byte for byte on the written table,
+codebook and panel files, against :func:`covextract.pipeline.run` on a
+separate copy of the same inputs with its own state folder.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+
+from covextract.ops.ledger import LEDGER_NAME, Ledger
+from covextract.ops.lock import EXIT_CODES
+from covextract.ops.pieces import PIECES_DIR, PieceWarning
+from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
+from covextract.pipeline import run
+
+RECIPE = {
+    "version": 1,
+    "study": {
+        "table": "villages.csv",
+        "id": "village_id",
+        "points": {"x": "lon", "y": "lat", "crs": "EPSG:4326"},
+        "date": "visit_date",
+    },
+    "units": {"buffer_m": 3000},
+    "layers": {
+        "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"},
+        "ndvi_m": {
+            "file": "ndvi_monthly/ndvi_{year}{month:02d}.tif",
+            "every": "month",
+            "scale": 0.0001,
+            "nodata": -3000,
+        },
+        "ndvi": {"file": "ndvi_2021.tif"},
+    },
+    "covariates": [
+        {"layer": "rain", "stats": ["mean"], "before": {"months": 3, "lag_months": 1}},
+        {
+            "layer": "rain",
+            "name": "wet_months",
+            "stats": ["mean"],
+            "before": {"months": 6, "lag_months": 1, "combine": "count_above", "threshold": 200},
+        },
+        {"layer": "ndvi_m", "stats": ["mean"], "before": {"months": 2, "lag_months": 1}},
+        {"layer": "rain", "name": "rain_month", "stats": ["max"], "periods": "2021-01.."},
+        {"layer": "ndvi", "stats": ["mean", "valid_share"]},
+    ],
+    "output": {"table": "out/table.csv", "panel": "out/panel", "drop": ["lat", "lon"]},
+}
+
+#: pieces of the recipe: 36 months of the rain mean (shared by two covariates), 24 of the
+#: NDVI mean, 36 of the rain maximum, and one for the static NDVI covariate
+N_PIECES = 36 + 24 + 36 + 1
+
+
+@pytest.fixture
+def scene(tmp_path, demo_dir, write_recipe):
+    """The demo folder with the refresh recipe; returns ``(folder, recipe path)``."""
+    return demo_dir, write_recipe(demo_dir, RECIPE)
+
+
+def _full_run(folder: Path, tmp_path: Path, write_recipe, recipe=RECIPE) -> Path:
+    """A full run on a separate copy of ``folder``'s inputs; returns the copy."""
+    other = tmp_path / f"full-{len(list(tmp_path.glob('full-*')))}"
+    shutil.copytree(folder, other, ignore=shutil.ignore_patterns("out", ".covextract-state"))
+    run(write_recipe(other, recipe))
+    return other
+
+
+def _outputs(folder: Path) -> dict:
+    out = folder / "out"
+    files = {p.relative_to(out): p.read_bytes() for p in sorted(out.rglob("*")) if p.is_file()}
+    # the manifest records times, absolute paths and the refresh fingerprint: not compared
+    return {k: v for k, v in files.items() if k.name != "table_manifest.json"}
+
+
+def _n_computed(result) -> int:
+    return sum(len(v) for v in result.computed.values())
+
+
+def _move_out(folder: Path, rel: str, store: Path) -> Path:
+    store.mkdir(exist_ok=True)
+    target = store / Path(rel).name
+    shutil.move(folder / rel, target)
+    return target
+
+
+def test_first_refresh_computes_everything_and_equals_a_full_run(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    result = refresh(recipe)
+    assert result.status == "success" and result.exit_code == 0
+    # 36 months of the rain mean (shared by two covariates), 24 of NDVI, 36 of the rain
+    # maximum (a periods: covariate keeps every period's statistics; the panel shows 2021)
+    assert len(result.computed["rain"]) == 36
+    assert "wet_months" not in result.computed  # same per-period statistics: shared pieces
+    assert len(result.computed["ndvi_m"]) == 24
+    assert len(result.computed["rain_month"]) == 36
+    assert result.computed["ndvi"] == ["all"]
+    full = _full_run(folder, tmp_path, write_recipe)
+    assert _outputs(folder) == _outputs(full)
+    # the panel holds every series covariate's per-period values, one file per month
+    panel = sorted(p.name for p in (folder / "out" / "panel").iterdir())
+    assert len(panel) == 36 and panel[0] == "2019-01-01.parquet"
+
+
+def test_second_refresh_with_nothing_new_does_nothing(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    before = {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")}
+    again = refresh(recipe)
+    assert again.status == "nothing_to_do" and again.exit_code == EXIT_CODES["nothing_to_do"]
+    assert again.computed == {} and not again.outputs_written
+    assert {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")} == before
+
+
+def test_adding_one_month_computes_only_that_month(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    held = [
+        _move_out(folder, f"{rel}_202112.tif", tmp_path / "later")
+        for rel in ("rain/rain", "ndvi_monthly/ndvi")
+    ]
+    first = refresh(recipe)
+    assert len(first.computed["rain"]) == 35 and first.next_expected["rain"] == "2021-12"
+    panel_before = {
+        p.name: p.stat().st_mtime_ns for p in (folder / "out" / "panel").glob("*.parquet")
+    }
+    shutil.move(held[0], folder / "rain" / "rain_202112.tif")
+    shutil.move(held[1], folder / "ndvi_monthly" / "ndvi_202112.tif")
+    second = refresh(recipe)
+    assert second.status == "success"
+    # exactly one new period per distinct per-period statistic
+    assert second.computed == {
+        "rain": ["2021-12"],
+        "ndvi_m": ["2021-12"],
+        "rain_month": ["2021-12"],
+    }
+    assert _n_computed(second) == 3
+    assert second.reused == {
+        "rain": 35,
+        "wet_months": 36,
+        "ndvi_m": 23,
+        "rain_month": 35,
+        "ndvi": 1,
+    }
+    # earlier panel files were not rewritten, the new month is a new file
+    panel_after = {
+        p.name: p.stat().st_mtime_ns for p in (folder / "out" / "panel").glob("*.parquet")
+    }
+    assert set(panel_after) - set(panel_before) == {"2021-12-01.parquet"}
+    assert all(panel_after[k] == v for k, v in panel_before.items())
+    full = _full_run(folder, tmp_path, write_recipe)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_changing_one_month_file_recomputes_only_that_month(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    refresh(recipe)
+    path = folder / "ndvi_monthly" / "ndvi_202006.tif"
+    with rasterio.open(path, "r+") as ds:
+        data = ds.read(1)
+        ds.write(np.where(data == -3000, data, data // 2).astype(data.dtype), 1)
+    result = refresh(recipe)
+    assert result.computed == {"ndvi_m": ["2020-06"]}
+    full = _full_run(folder, tmp_path, write_recipe)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_touching_a_file_without_changing_it_recomputes_nothing(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    path = folder / "rain" / "rain_202003.tif"
+    st = path.stat()
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 5_000_000_000))
+    result = refresh(recipe)
+    # the content hash is the same: nothing to compute, outputs already current
+    assert result.status == "nothing_to_do"
+
+
+def test_deleting_the_state_folder_rebuilds_the_same_result(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    first = _outputs(folder)
+    shutil.rmtree(folder / ".covextract-state")
+    again = refresh(recipe)
+    assert len(again.computed["rain"]) == 36
+    assert _outputs(folder) == first
+
+
+def test_a_new_covariate_computes_only_that_covariate(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    refresh(recipe)
+    extra = {
+        "layer": "rain",
+        "name": "rain_low",
+        "stats": ["min"],
+        "before": {"months": 1, "lag_months": 1},
+    }
+    changed = {**RECIPE, "covariates": [*RECIPE["covariates"], extra]}
+    result = refresh(write_recipe(folder, changed))
+    assert list(result.computed) == ["rain_low"] and len(result.computed["rain_low"]) == 36
+    full = _full_run(folder, tmp_path, write_recipe, changed)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_a_changed_window_recomputes_no_pixel_but_rewrites_the_table(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    refresh(recipe)
+    changed = {**RECIPE, "covariates": [dict(c) for c in RECIPE["covariates"]]}
+    changed["covariates"][0]["before"] = {"months": 4, "lag_months": 0}
+    with pytest.warns(Warning, match="lag 0"):
+        result = refresh(write_recipe(folder, changed))
+    assert result.computed == {} and result.outputs_written and result.status == "success"
+    with pytest.warns(Warning, match="lag 0"):
+        full = _full_run(folder, tmp_path, write_recipe, changed)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_new_units_recompute_every_piece_of_their_unit_set(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    refresh(recipe)
+    table = folder / "villages.csv"
+    lines = table.read_text(encoding="utf-8").splitlines()
+    table.write_text("\n".join(lines[:-1]) + "\n", encoding="utf-8")  # one village fewer
+    result = refresh(recipe)
+    assert len(result.computed["rain"]) == 36 and result.computed["ndvi"] == ["all"]
+    full = _full_run(folder, tmp_path, write_recipe)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_a_gap_in_a_series_gives_partial(scene, tmp_path):
+    folder, recipe = scene
+    _move_out(folder, "rain/rain_202007.tif", tmp_path / "away")
+    result = refresh(recipe)
+    assert result.status == "partial" and result.exit_code == EXIT_CODES["partial"]
+    assert result.missing == {"rain": ["2020-07"]}
+    again = refresh(recipe)  # nothing new: the gap is reported, nothing is recomputed
+    assert again.status == "nothing_to_do" and again.missing == {"rain": ["2020-07"]}
+
+
+def test_status_shows_periods_last_run_newer_inputs_and_next_period(scene, tmp_path):
+    folder, recipe = scene
+    never = refresh_status(recipe)
+    assert never.last_run is None
+    assert {s for _, s in never.layers["rain"]} == {"due"}
+    held = _move_out(folder, "rain/rain_202112.tif", tmp_path / "later")
+    refresh(recipe)
+    shutil.move(held, folder / "rain" / "rain_202112.tif")
+    os.utime(folder / "rain" / "rain_202112.tif")  # delivered after the last refresh
+    status = refresh_status(recipe)
+    rain = dict(status.layers["rain"])
+    assert rain["2021-12"] == "due" and rain["2021-11"] == "computed" and len(rain) == 36
+    assert dict(status.layers["ndvi"]) == {"all": "computed"}
+    assert status.last_run.result == "success"
+    assert str(folder / "rain" / "rain_202112.tif") in status.newer_inputs
+    assert status.next_expected == {"rain": "2022-01", "ndvi_m": "2022-01"}
+    refresh(recipe)
+    # a piece deleted by hand shows as missing on disk and is computed again
+    piece = next((folder / ".covextract-state" / PIECES_DIR).glob("*/2019-05-01.parquet"))
+    piece.unlink()
+    layer_states = {name: dict(v) for name, v in refresh_status(recipe).layers.items()}
+    assert "missing_on_disk" in {v.get("2019-05") for v in layer_states.values()}
+    redo = refresh(recipe)
+    assert sorted(redo.computed.values()) == [["2019-05"]]
+
+
+def test_a_corrupt_ledger_is_rebuilt_from_the_pieces(scene, tmp_path, write_recipe):
+    folder, recipe = scene
+    refresh(recipe)
+    state = folder / ".covextract-state"
+    (state / LEDGER_NAME).write_bytes(b"this is not a database" * 100)
+    with pytest.warns(LedgerRebuiltWarning, match=f"rebuilt from {N_PIECES} piece"):
+        result = refresh(recipe)
+    # the rebuilt ledger knows every piece: nothing is computed again
+    assert result.computed == {}
+    assert list(state.glob(f"{LEDGER_NAME}.broken-*"))  # the broken file is kept
+    with Ledger(state) as ledger:
+        ledger.check()
+        assert len(ledger.rows()) == N_PIECES
+    full = _full_run(folder, tmp_path, write_recipe)
+    assert _outputs(folder) == _outputs(full)
+
+
+def test_an_unreadable_piece_is_computed_again_with_a_warning(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    first = _outputs(folder)
+    piece = next((folder / ".covextract-state" / PIECES_DIR).glob("*/2020-02-01.parquet"))
+    piece.write_bytes(piece.read_bytes()[:100])
+    (folder / "out" / "table.csv").unlink()  # make the outputs stale too
+    with pytest.warns(PieceWarning, match="unreadable"):
+        result = refresh(recipe)
+    assert _n_computed(result) == 1
+    assert _outputs(folder) == first
+
+
+def test_ledger_rows_never_describe_a_missing_piece(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    state = folder / ".covextract-state"
+    with Ledger(state) as ledger:
+        rows = ledger.rows()
+    assert len(rows) == N_PIECES
+    assert all((state / row.output_file).is_file() for row in rows)
+    # Reference: hashlib's SHA-256 of the input's bytes.
+    with Ledger(state) as ledger:
+        rain = folder / "rain" / "rain_201901.tif"
+        assert ledger.recorded_hash(rain) == hashlib.sha256(rain.read_bytes()).hexdigest()
