@@ -8,6 +8,7 @@ computes and (by default) writes.
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import warnings
 from dataclasses import dataclass, field
@@ -1002,17 +1003,24 @@ def run(
         from covextract.engine.cluster import connect
 
         client = connect(scheduler)
+    lock = contextlib.nullcontext()
+    if write:
+        from covextract.ops.lock import StateLock
+
+        # the outputs and the state folder are shared with `refresh`: one writer at a time
+        lock = StateLock(plan.output_paths["state"])
     try:
-        return _run_plan(
-            plan,
-            recipe,
-            cache,
-            started,
-            write=write,
-            progress=progress,
-            threads=threads,
-            client=client,
-        )
+        with lock:
+            return _run_plan(
+                plan,
+                recipe,
+                cache,
+                started,
+                write=write,
+                progress=progress,
+                threads=threads,
+                client=client,
+            )
     finally:
         if client is not None:
             client.close()

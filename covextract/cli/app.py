@@ -11,6 +11,7 @@ import typer
 from covextract.cli import check as _check
 from covextract.cli import demo as _demo
 from covextract.cli import describe as _describe
+from covextract.cli import refresh as _refresh
 from covextract.cli import run as _run
 from covextract.cli import schedule as _schedule
 
@@ -29,6 +30,8 @@ app.command("run")(_run.run_command)
 app.command("check")(_check.check_command)
 app.command("describe")(_describe.describe_command)
 app.command("demo")(_demo.demo_command)
+app.command("refresh")(_refresh.refresh_command)
+app.command("status")(_refresh.status_command)
 app.command("schedule")(_schedule.schedule_command)
 
 

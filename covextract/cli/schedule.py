@@ -29,7 +29,7 @@ def schedule_command(
     yes: bool = typer.Option(False, "--yes", "-y", help="With --install: do not ask."),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
-    """Print a crontab line or systemd units that run `covextract run RECIPE`."""
+    """Print a crontab line or systemd units that run `covextract refresh RECIPE`."""
     with cli_errors(debug):
         from covextract.errors import InputFileError
         from covextract.ops import schedule as sched

@@ -44,6 +44,7 @@ import contextlib
 import datetime as dt
 import json
 import os
+import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -56,6 +57,7 @@ from covextract.ops.ledger import LEDGER_NAME, Ledger, LedgerCorruptError, Ledge
 from covextract.ops.ledger import fingerprint as _fingerprint
 from covextract.ops.lock import EXIT_CODES, StateLock
 from covextract.ops.pieces import (
+    PIECES_DIR,
     STATIC,
     PieceError,
     PieceWarning,
@@ -444,6 +446,38 @@ class _Pieces:
         self._done(task, fp)
 
 
+# mkstemp names of covextract's atomic writers: ".<final name>.<8 random chars>.tmp<suffix>"
+_LEFTOVER = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp(\.[A-Za-z0-9]+)?$")
+
+
+def remove_leftovers(plan) -> list[Path]:
+    """Remove the temporary files of atomic writes that a killed run left behind.
+
+    Called with the state lock held, so no other covextract process is
+    writing them. Looks only in the folders covextract writes: those of the
+    table, codebook and manifest, the panel folder, the state folder and its
+    pieces; only names of the atomic writers' pattern are touched.
+    """
+    paths = plan.output_paths
+    state = Path(paths["state"])
+    folders = {Path(paths[k]).parent for k in ("table", "codebook", "manifest")} | {state}
+    if plan.recipe.output.panel is not None:
+        folders.add(Path(plan.recipe.resolve(plan.recipe.output.panel)))
+    pieces = state / PIECES_DIR
+    if pieces.is_dir():
+        folders |= {p for p in pieces.iterdir() if p.is_dir()}
+    removed = []
+    for folder in sorted(folders):
+        if not folder.is_dir():
+            continue
+        for item in folder.iterdir():
+            if item.is_file() and _LEFTOVER.match(item.name):
+                with contextlib.suppress(OSError):
+                    item.unlink()
+                    removed.append(item)
+    return removed
+
+
 # ------------------------------------------------------------------ refresh
 def refresh(
     recipe,
@@ -483,6 +517,7 @@ def refresh(
     plan = plan_recipe(recipe)
     state = Path(plan.output_paths["state"])
     with StateLock(state):
+        leftovers = remove_leftovers(plan)
         ledger, note = open_ledger(state)
         with ledger:
             run_id = ledger.start_run()
@@ -502,6 +537,10 @@ def refresh(
                 raise
             if note:
                 result.notes.insert(0, note)
+            if leftovers:
+                result.notes.append(
+                    f"removed {len(leftovers)} temporary file(s) left by an interrupted run"
+                )
             ledger.finish_run(run_id, result.status, result.summary())
     return result
 

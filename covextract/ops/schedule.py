@@ -1,7 +1,8 @@
-"""Schedule ``covextract run RECIPE``: a crontab line or a systemd service and timer.
+"""Schedule ``covextract refresh RECIPE``: a crontab line or a systemd service and timer.
 
-The scheduled command is :data:`VERB`: ``run`` recomputes every covariate; when
-the incremental ``refresh`` command exists it will take its place.
+The scheduled command is :data:`VERB`: ``refresh`` computes only the periods
+that are new or whose inputs changed (:mod:`covextract.ops.refresh`) and
+exits with a documented status (:data:`covextract.ops.lock.EXIT_CODES`).
 
 Nothing here installs anything except :func:`install_crontab`, which the
 command calls only after the user has seen the line and confirmed.
@@ -50,9 +51,8 @@ __all__ = [
 #: The intervals a schedule can have.
 EVERY = ("month", "week", "day")
 
-#: The command a schedule runs: a full ``run`` for now (recomputes everything; the
-#: incremental ``refresh`` that computes only new periods is not built yet).
-VERB = "run"
+#: The command a schedule runs: the incremental ``refresh``.
+VERB = "refresh"
 
 #: Folder of the refresh state next to the recipe, and the log file in it.
 STATE_FOLDER = ".covextract-state"
@@ -69,8 +69,20 @@ def _problem(message: str, key: str) -> RecipeError:
 
 
 def default_log(recipe: str | os.PathLike) -> Path:
-    """The default log file: ``<recipe folder>/.covextract-state/refresh.log`` (absolute)."""
-    return Path(recipe).resolve().parent / STATE_FOLDER / LOG_NAME
+    """The default log file, ``refresh.log`` in the recipe's state folder (absolute).
+
+    The state folder is the recipe's ``output.state`` (by default
+    ``.covextract-state`` next to the study table). A file that does not load
+    as a recipe gets ``<recipe folder>/.covextract-state/refresh.log``.
+    """
+    from covextract.errors import CovextractError
+
+    try:
+        from covextract.pipeline import _load, _output_paths
+
+        return Path(_output_paths(_load(recipe))["state"]).resolve() / LOG_NAME
+    except CovextractError:
+        return Path(recipe).resolve().parent / STATE_FOLDER / LOG_NAME
 
 
 def default_tag(recipe: str | os.PathLike) -> str:

@@ -8,6 +8,7 @@ separate copy of the same inputs with its own state folder.
 
 from __future__ import annotations
 
+import copy
 import hashlib
 import os
 import shutil
@@ -23,52 +24,18 @@ from covextract.ops.pieces import PIECES_DIR, PieceWarning
 from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
 from covextract.pipeline import run
 
-RECIPE = {
-    "version": 1,
-    "study": {
-        "table": "villages.csv",
-        "id": "village_id",
-        "points": {"x": "lon", "y": "lat", "crs": "EPSG:4326"},
-        "date": "visit_date",
-    },
-    "units": {"buffer_m": 3000},
-    "layers": {
-        "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"},
-        "ndvi_m": {
-            "file": "ndvi_monthly/ndvi_{year}{month:02d}.tif",
-            "every": "month",
-            "scale": 0.0001,
-            "nodata": -3000,
-        },
-        "ndvi": {"file": "ndvi_2021.tif"},
-    },
-    "covariates": [
-        {"layer": "rain", "stats": ["mean"], "before": {"months": 3, "lag_months": 1}},
-        {
-            "layer": "rain",
-            "name": "wet_months",
-            "stats": ["mean"],
-            "before": {"months": 6, "lag_months": 1, "combine": "count_above", "threshold": 200},
-        },
-        {"layer": "ndvi_m", "stats": ["mean"], "before": {"months": 2, "lag_months": 1}},
-        {"layer": "rain", "name": "rain_month", "stats": ["max"], "periods": "2021-01.."},
-        {"layer": "ndvi", "stats": ["mean", "valid_share"]},
-    ],
-    "output": {"table": "out/table.csv", "panel": "out/panel", "drop": ["lat", "lon"]},
-}
-
 #: pieces of the recipe: 36 months of the rain mean (shared by two covariates), 24 of the
 #: NDVI mean, 36 of the rain maximum, and one for the static NDVI covariate
 N_PIECES = 36 + 24 + 36 + 1
 
 
 @pytest.fixture
-def scene(tmp_path, demo_dir, write_recipe):
+def scene(tmp_path, demo_dir, write_recipe, refresh_recipe):
     """The demo folder with the refresh recipe; returns ``(folder, recipe path)``."""
-    return demo_dir, write_recipe(demo_dir, RECIPE)
+    return demo_dir, write_recipe(demo_dir, refresh_recipe)
 
 
-def _full_run(folder: Path, tmp_path: Path, write_recipe, recipe=RECIPE) -> Path:
+def _full_run(folder: Path, tmp_path: Path, write_recipe, recipe: dict) -> Path:
     """A full run on a separate copy of ``folder``'s inputs; returns the copy."""
     other = tmp_path / f"full-{len(list(tmp_path.glob('full-*')))}"
     shutil.copytree(folder, other, ignore=shutil.ignore_patterns("out", ".covextract-state"))
@@ -94,7 +61,9 @@ def _move_out(folder: Path, rel: str, store: Path) -> Path:
     return target
 
 
-def test_first_refresh_computes_everything_and_equals_a_full_run(scene, tmp_path, write_recipe):
+def test_first_refresh_computes_everything_and_equals_a_full_run(
+    refresh_recipe, scene, tmp_path, write_recipe
+):
     folder, recipe = scene
     result = refresh(recipe)
     assert result.status == "success" and result.exit_code == 0
@@ -105,7 +74,7 @@ def test_first_refresh_computes_everything_and_equals_a_full_run(scene, tmp_path
     assert len(result.computed["ndvi_m"]) == 24
     assert len(result.computed["rain_month"]) == 36
     assert result.computed["ndvi"] == ["all"]
-    full = _full_run(folder, tmp_path, write_recipe)
+    full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
     # the panel holds every series covariate's per-period values, one file per month
     panel = sorted(p.name for p in (folder / "out" / "panel").iterdir())
@@ -122,7 +91,7 @@ def test_second_refresh_with_nothing_new_does_nothing(scene):
     assert {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")} == before
 
 
-def test_adding_one_month_computes_only_that_month(scene, tmp_path, write_recipe):
+def test_adding_one_month_computes_only_that_month(refresh_recipe, scene, tmp_path, write_recipe):
     folder, recipe = scene
     held = [
         _move_out(folder, f"{rel}_202112.tif", tmp_path / "later")
@@ -157,11 +126,13 @@ def test_adding_one_month_computes_only_that_month(scene, tmp_path, write_recipe
     }
     assert set(panel_after) - set(panel_before) == {"2021-12-01.parquet"}
     assert all(panel_after[k] == v for k, v in panel_before.items())
-    full = _full_run(folder, tmp_path, write_recipe)
+    full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
 
 
-def test_changing_one_month_file_recomputes_only_that_month(scene, tmp_path, write_recipe):
+def test_changing_one_month_file_recomputes_only_that_month(
+    refresh_recipe, scene, tmp_path, write_recipe
+):
     folder, recipe = scene
     refresh(recipe)
     path = folder / "ndvi_monthly" / "ndvi_202006.tif"
@@ -170,7 +141,7 @@ def test_changing_one_month_file_recomputes_only_that_month(scene, tmp_path, wri
         ds.write(np.where(data == -3000, data, data // 2).astype(data.dtype), 1)
     result = refresh(recipe)
     assert result.computed == {"ndvi_m": ["2020-06"]}
-    full = _full_run(folder, tmp_path, write_recipe)
+    full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
 
 
@@ -195,7 +166,9 @@ def test_deleting_the_state_folder_rebuilds_the_same_result(scene):
     assert _outputs(folder) == first
 
 
-def test_a_new_covariate_computes_only_that_covariate(scene, tmp_path, write_recipe):
+def test_a_new_covariate_computes_only_that_covariate(
+    refresh_recipe, scene, tmp_path, write_recipe
+):
     folder, recipe = scene
     refresh(recipe)
     extra = {
@@ -204,17 +177,19 @@ def test_a_new_covariate_computes_only_that_covariate(scene, tmp_path, write_rec
         "stats": ["min"],
         "before": {"months": 1, "lag_months": 1},
     }
-    changed = {**RECIPE, "covariates": [*RECIPE["covariates"], extra]}
+    changed = {**refresh_recipe, "covariates": [*refresh_recipe["covariates"], extra]}
     result = refresh(write_recipe(folder, changed))
     assert list(result.computed) == ["rain_low"] and len(result.computed["rain_low"]) == 36
     full = _full_run(folder, tmp_path, write_recipe, changed)
     assert _outputs(folder) == _outputs(full)
 
 
-def test_a_changed_window_recomputes_no_pixel_but_rewrites_the_table(scene, tmp_path, write_recipe):
+def test_a_changed_window_recomputes_no_pixel_but_rewrites_the_table(
+    refresh_recipe, scene, tmp_path, write_recipe
+):
     folder, recipe = scene
     refresh(recipe)
-    changed = {**RECIPE, "covariates": [dict(c) for c in RECIPE["covariates"]]}
+    changed = copy.deepcopy(refresh_recipe)
     changed["covariates"][0]["before"] = {"months": 4, "lag_months": 0}
     with pytest.warns(Warning, match="lag 0"):
         result = refresh(write_recipe(folder, changed))
@@ -224,7 +199,9 @@ def test_a_changed_window_recomputes_no_pixel_but_rewrites_the_table(scene, tmp_
     assert _outputs(folder) == _outputs(full)
 
 
-def test_new_units_recompute_every_piece_of_their_unit_set(scene, tmp_path, write_recipe):
+def test_new_units_recompute_every_piece_of_their_unit_set(
+    refresh_recipe, scene, tmp_path, write_recipe
+):
     folder, recipe = scene
     refresh(recipe)
     table = folder / "villages.csv"
@@ -232,7 +209,7 @@ def test_new_units_recompute_every_piece_of_their_unit_set(scene, tmp_path, writ
     table.write_text("\n".join(lines[:-1]) + "\n", encoding="utf-8")  # one village fewer
     result = refresh(recipe)
     assert len(result.computed["rain"]) == 36 and result.computed["ndvi"] == ["all"]
-    full = _full_run(folder, tmp_path, write_recipe)
+    full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
 
 
@@ -272,7 +249,7 @@ def test_status_shows_periods_last_run_newer_inputs_and_next_period(scene, tmp_p
     assert sorted(redo.computed.values()) == [["2019-05"]]
 
 
-def test_a_corrupt_ledger_is_rebuilt_from_the_pieces(scene, tmp_path, write_recipe):
+def test_a_corrupt_ledger_is_rebuilt_from_the_pieces(refresh_recipe, scene, tmp_path, write_recipe):
     folder, recipe = scene
     refresh(recipe)
     state = folder / ".covextract-state"
@@ -285,7 +262,7 @@ def test_a_corrupt_ledger_is_rebuilt_from_the_pieces(scene, tmp_path, write_reci
     with Ledger(state) as ledger:
         ledger.check()
         assert len(ledger.rows()) == N_PIECES
-    full = _full_run(folder, tmp_path, write_recipe)
+    full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
 
 
@@ -314,3 +291,27 @@ def test_ledger_rows_never_describe_a_missing_piece(scene):
     with Ledger(state) as ledger:
         rain = folder / "rain" / "rain_201901.tif"
         assert ledger.recorded_hash(rain) == hashlib.sha256(rain.read_bytes()).hexdigest()
+
+
+def test_command_line_exit_codes_and_summary(scene, tmp_path):
+    from typer.testing import CliRunner
+
+    from covextract.cli.app import app
+
+    folder, recipe = scene
+    runner = CliRunner()
+    _move_out(folder, "rain/rain_202007.tif", tmp_path / "away")
+    first = runner.invoke(app, ["refresh", str(recipe), "-q"])
+    assert first.exit_code == EXIT_CODES["partial"] == 4, first.output
+    assert "missing inputs of layer rain (gaps): 2020-07" in first.output
+    shutil.move(tmp_path / "away" / "rain_202007.tif", folder / "rain" / "rain_202007.tif")
+    second = runner.invoke(app, ["refresh", str(recipe), "-q"])
+    assert second.exit_code == EXIT_CODES["success"] == 0, second.output
+    assert "computed 2 piece(s): rain 2020-07; rain_month 2020-07" in second.output
+    third = runner.invoke(app, ["refresh", str(recipe), "-q"])
+    assert third.exit_code == EXIT_CODES["nothing_to_do"] == 3, third.output
+    assert "computed nothing new" in third.output and "outputs unchanged" in third.output
+    status = runner.invoke(app, ["status", str(recipe)])
+    assert status.exit_code == 0, status.output
+    assert "computed                         2019-01..2021-12 (36)" in status.output
+    assert "result nothing_to_do" in status.output

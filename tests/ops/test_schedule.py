@@ -137,10 +137,25 @@ def test_default_tag_is_stable_per_recipe(recipe, tmp_path):
     assert line.endswith(f"# covextract:{sched.default_tag(recipe)}")
 
 
-def test_default_log_is_in_the_state_folder(recipe):
+def test_default_log_of_a_file_that_is_no_recipe_is_next_to_it(recipe):
     assert (
         sched.default_log(recipe) == recipe.resolve().parent / ".covextract-state" / "refresh.log"
     )
+
+
+def test_default_log_is_in_the_recipes_state_folder(demo_dir, write_recipe, demo_recipe_data):
+    data = {**demo_recipe_data, "output": {**demo_recipe_data["output"], "state": "keep/st"}}
+    recipe = write_recipe(demo_dir, data)
+    assert sched.default_log(recipe) == (demo_dir / "keep" / "st" / "refresh.log").resolve()
+    # the demo's own recipe: the default state folder, next to the study table
+    assert (
+        sched.default_log(demo_dir / "recipe.yaml")
+        == (demo_dir / ".covextract-state" / "refresh.log").resolve()
+    )
+
+
+def test_the_scheduled_command_is_the_incremental_refresh():
+    assert sched.VERB == "refresh"
 
 
 @pytest.mark.parametrize(
