@@ -12,6 +12,10 @@ load_recipe(source) -> Recipe
     A validated recipe.
 run(recipe, ...) -> RunResult
     The full result: table, codebook rows, output paths, summary.
+refresh(recipe, ...) -> RefreshResult
+    Compute only new or changed periods and rebuild the outputs.
+refresh_status(recipe) -> RefreshStatus
+    Periods computed, due or missing; the last refresh.
 
 Names are loaded on first use so that ``covextract --help`` stays fast.
 """
@@ -27,6 +31,8 @@ __all__ = [
     "zonal_statistics",
     "load_recipe",
     "run",
+    "refresh",
+    "refresh_status",
     "show_versions",
 ]
 
@@ -35,6 +41,8 @@ _LAZY = {
     "zonal_statistics": ("covextract.api", "zonal_statistics"),
     "check_recipe": ("covextract.pipeline", "check_recipe"),
     "run": ("covextract.pipeline", "run"),
+    "refresh": ("covextract.ops.refresh", "refresh"),
+    "refresh_status": ("covextract.ops.refresh", "refresh_status"),
     "load_recipe": ("covextract.recipe", "load_recipe"),
 }
 
