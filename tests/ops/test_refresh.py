@@ -315,3 +315,49 @@ def test_command_line_exit_codes_and_summary(scene, tmp_path):
     assert status.exit_code == 0, status.output
     assert "computed                         2019-01..2021-12 (36)" in status.output
     assert "result nothing_to_do" in status.output
+
+
+def test_a_failing_refresh_keeps_the_outputs_and_records_the_error(scene, monkeypatch):
+    import covextract.pipeline as pipeline
+    from covextract.cli.refresh import status_lines
+    from covextract.errors import CovextractError, OutputError
+
+    folder, recipe = scene
+    refresh(recipe)
+    before = _outputs(folder)
+    # an input that no longer opens: a clear error before anything is started
+    bad = folder / "rain" / "rain_202105.tif"
+    good = bad.read_bytes()
+    bad.write_bytes(b"not a GeoTIFF any more")
+    with pytest.raises(CovextractError, match="rain_202105.tif"):
+        refresh(recipe)
+    assert _outputs(folder) == before
+    bad.write_bytes(good)
+    # a failure half-way (here: the disk fills up while computing)
+    shutil.rmtree(folder / ".covextract-state" / PIECES_DIR)
+
+    def disk_full(*args, **kwargs):
+        raise OutputError("cannot write the piece: [Errno 28] No space left on device")
+
+    monkeypatch.setattr(pipeline, "compute_covariate", disk_full)
+    with pytest.raises(OutputError, match="No space left"):
+        refresh(recipe)
+    assert _outputs(folder) == before
+    with Ledger(folder / ".covextract-state") as ledger:
+        last = ledger.last_run()
+    assert last.result == "error" and "No space left" in last.summary["error"]
+    monkeypatch.undo()
+    assert any("result error" in line for line in status_lines(refresh_status(recipe)))
+    done = refresh(recipe)
+    assert done.status == "success" and _outputs(folder) == before
+
+
+def test_status_reports_an_unreadable_ledger_without_touching_it(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    ledger = folder / ".covextract-state" / LEDGER_NAME
+    ledger.write_bytes(b"garbage" * 50)
+    status = refresh_status(recipe)
+    assert status.ledger_problem and "unreadable" in status.ledger_problem
+    assert status.last_run is None
+    assert ledger.read_bytes() == b"garbage" * 50
