@@ -995,6 +995,32 @@ def run(
     plan = plan_recipe(recipe)
     recipe = plan.recipe
     cache = WeightCache(plan.output_paths["state"] if write else None)
+    lock = contextlib.nullcontext()
+    if write:
+        from covextract.ops.lock import StateLock
+
+        # the outputs and the state folder are shared with `refresh`: one writer at a time
+        lock = StateLock(plan.output_paths["state"])
+    with execution_settings(recipe, threads, scheduler) as (threads, client), lock:
+        return _run_plan(
+            plan,
+            recipe,
+            cache,
+            started,
+            write=write,
+            progress=progress,
+            threads=threads,
+            client=client,
+        )
+
+
+@contextlib.contextmanager
+def execution_settings(recipe, threads=None, scheduler=None):
+    """``(threads, client)`` of a run: arguments first, then the recipe's ``execution``.
+
+    ``client`` is a connected dask.distributed client when a scheduler is set
+    (closed on exit), else None.
+    """
     execution = getattr(recipe, "execution", None)
     threads = threads if threads is not None else getattr(execution, "threads", None)
     scheduler = scheduler if scheduler is not None else getattr(execution, "scheduler", None)
@@ -1003,24 +1029,8 @@ def run(
         from covextract.engine.cluster import connect
 
         client = connect(scheduler)
-    lock = contextlib.nullcontext()
-    if write:
-        from covextract.ops.lock import StateLock
-
-        # the outputs and the state folder are shared with `refresh`: one writer at a time
-        lock = StateLock(plan.output_paths["state"])
     try:
-        with lock:
-            return _run_plan(
-                plan,
-                recipe,
-                cache,
-                started,
-                write=write,
-                progress=progress,
-                threads=threads,
-                client=client,
-            )
+        yield threads, client
     finally:
         if client is not None:
             client.close()

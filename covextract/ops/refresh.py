@@ -548,7 +548,12 @@ def refresh(
 def _refresh(plan, ledger, started, *, progress, threads, scheduler, recompute) -> RefreshResult:
     from covextract import __version__
     from covextract.engine.cache import WeightCache
-    from covextract.pipeline import _Assembly, _progress_factory, compute_covariate
+    from covextract.pipeline import (
+        _Assembly,
+        _progress_factory,
+        compute_covariate,
+        execution_settings,
+    )
 
     recipe = plan.recipe
     state = Path(plan.output_paths["state"])
@@ -580,15 +585,7 @@ def _refresh(plan, ledger, started, *, progress, threads, scheduler, recompute) 
         reused = {w.cp.prefix: len(w.tasks) for w in works}
         return RefreshResult("nothing_to_do", {}, reused, missing, nxt, False)
 
-    execution = getattr(recipe, "execution", None)
-    threads = threads if threads is not None else getattr(execution, "threads", None)
-    scheduler = scheduler if scheduler is not None else getattr(execution, "scheduler", None)
-    client = None
-    if scheduler:
-        from covextract.engine.cluster import connect
-
-        client = connect(scheduler)
-    try:
+    with execution_settings(recipe, threads, scheduler) as (threads, client):
         cache = WeightCache(state)
         pieces = _Pieces(plan, state)
         reporter = _progress_factory(progress)
@@ -625,9 +622,6 @@ def _refresh(plan, ledger, started, *, progress, threads, scheduler, recompute) 
         crash_point("before_ledger_commit")
         ledger.record(pieces.new_rows)
         crash_point("after_ledger_commit")
-    finally:
-        if client is not None:
-            client.close()
     status = "partial" if missing else "success"
     return RefreshResult(
         status, pieces.computed, pieces.reused, missing, nxt, True, run_result, pieces.notes
