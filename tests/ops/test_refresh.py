@@ -361,3 +361,12 @@ def test_status_reports_an_unreadable_ledger_without_touching_it(scene):
     assert status.ledger_problem and "unreadable" in status.ledger_problem
     assert status.last_run is None
     assert ledger.read_bytes() == b"garbage" * 50
+
+
+def test_recompute_computes_every_piece_again_with_the_same_result(scene):
+    folder, recipe = scene
+    refresh(recipe)
+    first = _outputs(folder)
+    again = refresh(recipe, recompute=True)
+    assert _n_computed(again) == N_PIECES
+    assert again.status == "success" and _outputs(folder) == first
