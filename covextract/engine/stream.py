@@ -90,29 +90,33 @@ def _continuous_reducer(weighting, thresholds, keep):
         else:
             rows, cols = np.divmod(np.arange(h * w, dtype=np.int64), w)
             run_areas, pixel_areas = None, grid.pixel_areas(r0 + rows, c0 + cols)
-        return reduce_block_runs(
+        values, valid = values.ravel(), valid.ravel()
+        part = reduce_block_runs(
             entries,
             runs,
-            values.ravel(),
-            valid.ravel(),
+            values,
+            valid,
             entry_areas(grid, window, entries[1]),
             run_areas=run_areas,
             pixel_areas=pixel_areas,
             weighting=weighting,
             thresholds=thresholds,
         )
+        if keep:
+            # percentiles: the (unit, value, weight) triples of valid pixels as
+            # well; the moments stay the run reduction's, so asking for a
+            # percentile never changes a unit's mean
+            unit, pix, cov = merge_parts(window, *entries, *runs)
+            ok = valid[pix]
+            wt = cov * entry_areas(grid, window, pix) if weighting else cov
+            part.dist = (unit[ok].astype(np.int32), values[pix][ok], wt[ok])
+        return part
 
     reduce.gathers = True  # accepts values already gathered at the weights' pixels
-    # without percentiles the runs are reduced as runs (a per-pixel weight factor,
-    # known only once the block is read, still sends the block to the per-pixel path)
-    reduce.runs = None if keep else reduce_runs
+    # every block goes to the run reduction except when a per-pixel weight
+    # factor (known only once the block is read) sends it to the per-pixel path
+    reduce.runs = reduce_runs
     return reduce
-
-
-#: The run reduction costs about 20 ns per pixel of the whole block, the
-#: per-pixel one about 90 ns per weight (measured on the scale benchmark), so
-#: runs are reduced as runs when the weights use at least a quarter of the block.
-_RUNS_MIN_SHARE = 0.25
 
 
 def _block_task(source, grid, window, parts, reducer):
@@ -120,11 +124,10 @@ def _block_task(source, grid, window, parts, reducer):
     t0 = time.perf_counter()
     stored = source.read_block(window)
     t1 = time.perf_counter()
-    reduce_runs = getattr(reducer, "runs", None) if runs[0].size else None
-    if reduce_runs is not None:
-        used = entries[0].size + int(runs[2].sum(dtype=np.int64))
-        if used < _RUNS_MIN_SHARE * window[2] * window[3]:
-            reduce_runs = None
+    # the compiled run reduction costs per covered pixel whatever share of the
+    # block the weights use, so it takes every block it can (no percentiles,
+    # no per-pixel weight factor)
+    reduce_runs = getattr(reducer, "runs", None)
     if reduce_runs is None:
         unit, pix, cov = merge_parts(window, *entries, *runs)
         if getattr(source, "elementwise", False) and getattr(reducer, "gathers", False):
