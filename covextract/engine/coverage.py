@@ -38,7 +38,7 @@ import numpy as np
 import shapely
 from affine import Affine
 
-from covextract.engine.kernels import emit_cells, overlap_cells
+from covextract.engine.kernels import area_weights
 from covextract.errors import GeometryError, RasterError, RecipeError, RecipeProblem, TableError
 
 __all__ = ["Coverage", "KERNEL_VERSION", "point_coverage", "polygon_coverage"]
@@ -252,7 +252,7 @@ def _pixel_edges(arr: np.ndarray, idx: np.ndarray, inv: Affine) -> _Edges:
     is_exterior = np.ones(n_rings, dtype=bool)
     is_exterior[1:] = ring_part[1:] != ring_part[:-1]
     # with x right and y down, a ring of positive shoelace area accumulates
-    # coverage -1 inside (see _overlap_pass); exteriors must give +1
+    # coverage -1 inside (see kernels.area_weights); exteriors must give +1
     ring_sign = np.where(is_exterior, -np.sign(area2), np.sign(area2))
     # the affine map preserves orientation iff its determinant is positive
     world_ccw = np.sign(area2) * np.sign(inv.determinant) > 0
@@ -277,54 +277,6 @@ def _unit_groups(unit: np.ndarray, load: np.ndarray, limit: int):
 
 
 # ------------------------------------------------------------ overlap kernel
-@dataclass
-class _Cells:
-    """Accumulated cells of a group of units, in unit-local pixel coordinates.
-
-    One entry per distinct ``(unit, row, col)`` that received an edge
-    contribution, sorted; ``value`` is the cell's coverage, ``run`` the
-    coverage of the cells after it in the row up to the next entry
-    (``run_len`` of them), ``boundary`` whether a boundary piece of positive
-    length runs through the cell's interior.
-    """
-
-    unit: np.ndarray
-    row: np.ndarray
-    col: np.ndarray
-    value: np.ndarray
-    run: np.ndarray
-    run_len: np.ndarray
-    boundary: np.ndarray
-
-
-def _overlap_pass(e: _Edges, lo: int, hi: int, ox, oy) -> _Cells:
-    """Signed-area accumulation for the units of edges ``lo:hi``.
-
-    For a piece inside cell ``(r, c)`` with (oriented) height ``dy`` and
-    mid-point ``x_mid``, the region between the piece and the right edge of
-    the cell has signed area ``dy * ((c + 1) - x_mid)``, and every cell
-    further right in row ``r`` gains ``dy`` in full. Summing over a closed,
-    oriented boundary gives, for each cell, the area of the polygon inside it
-    (Green's theorem, one row strip at a time). The "further right" part is a
-    running sum along the row, kept sparse: it changes only at cells that hold
-    a piece, and between two such cells it is constant (the interior runs).
-    The loop over edges, pieces and rows is compiled
-    (:func:`covextract.engine.kernels.overlap_cells`); coordinates are shifted
-    by the integer origin ``(ox, oy)`` of each unit first (exact in floating
-    point) so that ``(c + 1) - x`` keeps its digits far from the grid origin.
-    """
-    unit = e.unit[lo:hi]
-    cu, cr, cc, value, run, run_len, bnd = overlap_cells(
-        unit,
-        e.x0[lo:hi] - ox[unit],
-        e.y0[lo:hi] - oy[unit],
-        e.x1[lo:hi] - ox[unit],
-        e.y1[lo:hi] - oy[unit],
-        np.asarray(e.sign[lo:hi], dtype=np.float64),
-    )
-    return _Cells(cu, cr, cc, value, run, run_len, bnd)
-
-
 def _sort_cells(unit, row, col) -> np.ndarray:
     """Permutation sorting cells by ``(unit, row, col)``."""
     if unit.size == 0:
@@ -353,6 +305,21 @@ def _unit_origins(e: _Edges, n_units: int):
 
 
 def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
+    """``overlap`` and ``touched`` weights by signed-area accumulation.
+
+    For a piece of edge inside cell ``(r, c)`` with (oriented) height ``dy``
+    and mid-point ``x_mid``, the region between the piece and the right edge
+    of the cell has signed area ``dy * ((c + 1) - x_mid)``, and every cell
+    further right in row ``r`` gains ``dy`` in full. Summing over a closed,
+    oriented boundary gives, for each cell, the area of the polygon inside it
+    (Green's theorem, one row strip at a time). The "further right" part is a
+    running sum along the row, kept sparse: it changes only at cells that hold
+    a piece, and between two such cells it is constant (the interior runs).
+    The loops over edges, pieces, rows and cells are compiled
+    (:func:`covextract.engine.kernels.area_weights`); coordinates are shifted
+    by the integer origin of each unit first (exact in floating point) so that
+    ``(c + 1) - x`` keeps its digits far from the grid origin.
+    """
     ox, oy = _unit_origins(e, n_units)
     # shifting by the origin is exact and keeps the accumulation's digits;
     # the integer offsets are restored when the cells are emitted
@@ -362,16 +329,16 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     out = []
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
+    sign = np.asarray(e.sign, dtype=np.float64)
     for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
-        cells = _overlap_pass(e, lo, hi, ox, oy)
-        entries, run_items = emit_cells(
-            cells.unit,
-            cells.row,
-            cells.col,
-            cells.value,
-            cells.run,
-            cells.run_len,
-            cells.boundary,
+        unit = e.unit[lo:hi]
+        entries, run_items = area_weights(
+            unit,
+            e.x0[lo:hi] - ox[unit],
+            e.y0[lo:hi] - oy[unit],
+            e.x1[lo:hi] - ox[unit],
+            e.y1[lo:hi] - oy[unit],
+            sign[lo:hi],
             oxi,
             oyi,
             width,

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["block_shift", "emit_cells", "overlap_cells", "reduce_runs_block"]
+__all__ = ["area_weights", "block_shift", "reduce_runs_block"]
 
 
 @njit(nogil=True, cache=True)
@@ -303,25 +303,91 @@ def _sort_bucket(col, area, cover, bnd, lo, hi):  # pragma: no cover - compiled
 
 
 @njit(nogil=True, cache=True)
-def overlap_cells(unit, x0, y0, x1, y1, sign):  # pragma: no cover - compiled
-    """Signed-area accumulation of polygon edges over the pixel lattice.
+def _snap_one(v, tol):  # pragma: no cover - compiled
+    """Weights within ``tol`` of 1 (accumulation noise) are 1; none above 1."""
+    if abs(v - 1.0) <= tol:
+        return 1.0
+    return min(v, 1.0)
 
-    Edges (sorted by unit) are in unit-local pixel coordinates. Each edge is
-    cut at every integer column, each piece at every integer row; a piece in
-    cell ``(r, c)`` adds ``dy·((c + 1) − x_mid)`` to the cell and its height
-    ``dy`` to the running cover of the cells right of it (an event at
-    ``c + 1``). Unit by unit, events are gathered by a counting sort on the
-    row and sorted by column within the row; each distinct cell gets its
-    area plus the running cover. Scratch space is one unit's pieces, reused.
 
-    Returns ``(unit, row, col, value, run, run_len, boundary)`` of the cells,
-    sorted by unit, row, column: ``run`` is the cover carried to the cells
-    after the cell (``run_len`` of them, 0 for the last in its row), and
-    ``boundary`` whether a piece of positive length crosses the cell's interior.
+@njit(nogil=True, cache=True)
+def _grown(a, n):  # pragma: no cover - compiled
+    """``a`` copied into an array of at least ``n`` items (doubling)."""
+    b = np.empty(max(2 * a.size, n), a.dtype)
+    b[: a.size] = a
+    return b
+
+
+@njit(nogil=True, cache=True)
+def _trim(a, n):  # pragma: no cover - compiled
+    """The first ``n`` items of ``a``; a copy when that frees more than half of it."""
+    return a[:n].copy() if n < a.size // 2 else a[:n]
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _clip(
+    row, col, value, run, bnd, run_len, ox, oy, width, height, floor, snap, touched, mode
+):  # pragma: no cover - compiled
+    """One cell of :func:`area_weights` on the grid.
+
+    Returns ``(keep, ro, as_run, gr, gc, rs, wc, wr, lost)``: whether the
+    cell is an on-grid weight, how many pixels of its run are on the grid
+    (from column ``rs``), whether that run stays a run, the cell's grid row
+    and column, the weights of the cell and of its run, and the weight lost
+    off the grid.
+    """
+    v = _snap_one(value, snap)
+    rv = _snap_one(run, snap)
+    gr = row + oy
+    gc = col + ox
+    row_on = gr >= 0 and gr < height
+    ck = (v >= floor and v > 0) or (touched and bnd)
+    keep = ck and row_on and gc >= 0 and gc < width
+    wc = 1.0 if touched else v
+    wr = 1.0 if touched else rv
+    length = run_len if (rv >= floor and rv > 0) else 0
+    rs = max(gc + 1, 0)
+    re = min(gc + length, width - 1)
+    ro = max(re - rs + 1, 0) if row_on else 0
+    lost = (wc if (ck and not keep) else 0.0) + wr * (length - ro)
+    as_run = mode == 2 or (mode == 1 and ro > 0 and wr == 1.0)
+    return keep, ro, as_run, gr, gc, rs, wc, wr, lost
+
+
+@njit(nogil=True, cache=True)
+def area_weights(
+    unit, x0, y0, x1, y1, sign, ox, oy, width, height, floor, snap, touched, mode, offgrid
+):  # pragma: no cover - compiled
+    """Coverage of polygons over the pixel lattice by signed-area accumulation.
+
+    Edges (sorted by unit) are in unit-local pixel coordinates; ``ox``/``oy``
+    are the units' integer origins on the grid. Each edge is cut at every
+    integer column, each piece at every integer row; a piece in cell ``(r, c)``
+    adds ``dy·((c + 1) − x_mid)`` to the cell and its height ``dy`` to the
+    running cover of the cells right of it (an event at ``c + 1``). Unit by
+    unit, events are gathered by a counting sort on the row and sorted by
+    column within the row; each distinct cell gets its area plus the running
+    cover, and the cover it carries is the weight of the cells after it up to
+    the next cell (a run). Scratch space is one unit's pieces, reused.
+
+    Cells and runs are then clipped to the ``width`` x ``height`` grid.
+    Weights within ``snap`` of 1 are 1. A cell is kept when its weight is at
+    least ``floor`` (and positive), or, with ``touched``, when a piece of
+    positive length crosses its interior; a run when the cover it carries is.
+    With ``touched`` every kept pixel weighs 1. Weight falling off the grid
+    is added to ``offgrid[unit]`` (in place) without enumerating off-grid pixels.
+
+    ``mode`` 0: every pixel an entry. 1 (interior runs): runs of weight
+    exactly 1 stay runs, every cell and every other run becomes entries, so a
+    cell whose weight only rounds to 1 is never assumed interior. 2 (touched):
+    cells become runs of one pixel, joined with the runs that touch them.
+
+    Returns entries ``(unit, row, col, weight)`` and runs ``(unit, row,
+    start, stop)``, each sorted by unit, row, column.
     """
     ne = unit.size
-    # upper bounds of the pieces (one per edge plus one per integer
-    # crossing): in all, and of the largest unit
+    # upper bound of the pieces of the largest unit: one per edge plus one
+    # per integer crossing
     cap = 0
     unit_cap = 0
     acc = 0
@@ -341,16 +407,23 @@ def overlap_cells(unit, x0, y0, x1, y1, sign):  # pragma: no cover - compiled
     e_area = np.empty(2 * unit_cap)
     e_cover = np.empty(2 * unit_cap)
     e_bnd = np.empty(2 * unit_cap, np.bool_)
-    # every piece gives at most two cells (np.empty: pages never written cost nothing)
-    out_cap = 2 * cap
-    c_unit = np.empty(out_cap, np.int32)
-    c_row = np.empty(out_cap, np.int32)
-    c_col = np.empty(out_cap, np.int32)
-    c_value = np.empty(out_cap)
-    c_run = np.empty(out_cap)
-    c_len = np.empty(out_cap, np.int32)
-    c_bnd = np.empty(out_cap, np.bool_)
-    k = 0
+    # the unit's cells
+    w_row = np.empty(2 * unit_cap, np.int64)
+    w_col = np.empty(2 * unit_cap, np.int64)
+    w_val = np.empty(2 * unit_cap)
+    w_run = np.empty(2 * unit_cap)
+    w_bnd = np.empty(2 * unit_cap, np.bool_)
+    w_len = np.empty(2 * unit_cap, np.int64)
+    eu = np.empty(cap + 16, np.int64)
+    er = np.empty(cap + 16, np.int64)
+    ec = np.empty(cap + 16, np.int64)
+    ew = np.empty(cap + 16)
+    ru = np.empty(cap // 4 + 16, np.int64)
+    rr = np.empty(cap // 4 + 16, np.int64)
+    ra = np.empty(cap // 4 + 16, np.int64)
+    rb = np.empty(cap // 4 + 16, np.int64)
+    ne_out = 0
+    nr_out = 0
     i = 0
     while i < ne:
         u = unit[i]
@@ -391,6 +464,7 @@ def overlap_cells(unit, x0, y0, x1, y1, sign):  # pragma: no cover - compiled
         for r in range(nrow):
             offs[r + 1] += offs[r]
         fill = offs[:-1].copy()
+        nc = 0
         for q in range(m):
             r = p_row[q] - rmin
             f = fill[r]
@@ -418,8 +492,9 @@ def overlap_cells(unit, x0, y0, x1, y1, sign):  # pragma: no cover - compiled
                 e_area[lo:hi] = e_area[order]
                 e_cover[lo:hi] = e_cover[order]
                 e_bnd[lo:hi] = e_bnd[order]
+            # the row's cells: area plus the running cover
             running = 0.0
-            first = k
+            first = nc
             e = lo
             while e < hi:
                 col = e_col[e]
@@ -432,151 +507,120 @@ def overlap_cells(unit, x0, y0, x1, y1, sign):  # pragma: no cover - compiled
                     b = b or e_bnd[e]
                     e += 1
                 running += cov
-                c_unit[k] = u
-                c_row[k] = r + rmin
-                c_col[k] = col
-                c_value[k] = a + running
-                c_run[k] = running
-                c_bnd[k] = b
-                c_len[k] = 0
-                if k > first:
-                    c_len[k - 1] = col - c_col[k - 1] - 1
-                k += 1
-    return (
-        c_unit[:k],
-        c_row[:k],
-        c_col[:k],
-        c_value[:k],
-        c_run[:k],
-        c_len[:k],
-        c_bnd[:k],
-    )
-
-
-@njit(nogil=True, cache=True)
-def _snap_one(v, tol):  # pragma: no cover - compiled
-    """Weights within ``tol`` of 1 (accumulation noise) are 1; none above 1."""
-    if abs(v - 1.0) <= tol:
-        return 1.0
-    return min(v, 1.0)
-
-
-@njit(nogil=True, cache=True)
-def _clip_cell(
-    cu, cr, cc, value, run, run_len, bnd, ox, oy, width, height, floor, snap, touched, i
-):  # pragma: no cover - compiled
-    """Cell ``i`` on the grid: what :func:`emit_cells` keeps of it and of its run."""
-    v = _snap_one(value[i], snap)
-    rv = _snap_one(run[i], snap)
-    u = cu[i]
-    gr = cr[i] + oy[u]
-    gc = cc[i] + ox[u]
-    row_on = gr >= 0 and gr < height
-    ck = (v >= floor and v > 0) or (touched and bnd[i])
-    keep = ck and row_on and gc >= 0 and gc < width
-    w_cell = 1.0 if touched else v
-    w_run = 1.0 if touched else rv
-    length = run_len[i] if (rv >= floor and rv > 0) else 0
-    rs = max(gc + 1, 0)
-    re = min(gc + length, width - 1)
-    ro = max(re - rs + 1, 0) if row_on else 0
-    return u, gr, gc, ck, keep, w_cell, w_run, length, rs, ro
-
-
-@njit(nogil=True, cache=True)
-def emit_cells(
-    cu, cr, cc, value, run, run_len, bnd, ox, oy, width, height, floor, snap, touched, mode, offgrid
-):  # pragma: no cover - compiled
-    """Clip the cells of :func:`overlap_cells` to the grid and emit weights.
-
-    ``ox``/``oy`` are the units' integer origins (cells are unit-local).
-    Weights within ``snap`` of 1 are 1. A cell is kept when its weight is at
-    least ``floor`` (and positive), or, with ``touched``, when the boundary
-    crosses it; a run when the cover it carries is. With ``touched`` every
-    kept pixel weighs 1. Weight falling off the grid is added to
-    ``offgrid[unit]`` (in place) without enumerating off-grid pixels.
-
-    ``mode`` 0: every pixel an entry. 1 (interior runs): runs of weight
-    exactly 1 stay runs, every cell and every other run becomes entries, so a
-    cell whose weight only rounds to 1 is never assumed interior. 2 (touched):
-    cells become runs of one pixel, joined with the runs that touch them.
-
-    Returns entries ``(unit, row, col, weight)`` and runs ``(unit, row,
-    start, stop)``, each sorted by unit, row, column.
-    """
-    n = cu.size
-    n_entries = 0
-    n_runs = 0
-    for i in range(n):
-        u, gr, gc, ck, keep, w_cell, w_run, length, rs, ro = _clip_cell(
-            cu, cr, cc, value, run, run_len, bnd, ox, oy, width, height, floor, snap, touched, i
-        )
-        offgrid[u] += (w_cell if (ck and not keep) else 0.0) + w_run * (length - ro)
-        if mode == 0:
-            n_entries += keep + ro
-        elif mode == 1:
-            n_entries += keep
-            if ro > 0 and w_run == 1.0:
-                n_runs += 1
+                w_row[nc] = r + rmin
+                w_col[nc] = col
+                w_val[nc] = a + running
+                w_run[nc] = running
+                w_bnd[nc] = b
+                w_len[nc] = 0
+                if nc > first:
+                    w_len[nc - 1] = col - w_col[nc - 1] - 1
+                nc += 1
+        # ---- clip to the grid: count, make room once per unit, emit
+        # (no array is rebound inside the loops over cells)
+        n_e = 0
+        n_r = 0
+        for t in range(nc):
+            keep, ro, as_run = _clip(
+                w_row[t],
+                w_col[t],
+                w_val[t],
+                w_run[t],
+                w_bnd[t],
+                w_len[t],
+                ox[u],
+                oy[u],
+                width,
+                height,
+                floor,
+                snap,
+                touched,
+                mode,
+            )[:3]
+            if mode == 2:
+                n_r += keep + (ro > 0)
             else:
-                n_entries += ro
-        else:
-            n_runs += keep + (ro > 0)
-    eu = np.empty(n_entries, np.int64)
-    er = np.empty(n_entries, np.int64)
-    ec = np.empty(n_entries, np.int64)
-    ew = np.empty(n_entries)
-    ru = np.empty(n_runs, np.int64)
-    rr = np.empty(n_runs, np.int64)
-    ra = np.empty(n_runs, np.int64)
-    rb = np.empty(n_runs, np.int64)
-    p = 0
-    q = 0
-    for i in range(n):
-        u, gr, gc, ck, keep, w_cell, w_run, length, rs, ro = _clip_cell(
-            cu, cr, cc, value, run, run_len, bnd, ox, oy, width, height, floor, snap, touched, i
-        )
-        if mode == 2:
-            # disjoint segments in increasing column order: join those that touch
-            for seg in range(2):
-                if seg == 0:
-                    if not keep:
-                        continue
-                    a = gc
-                    b = gc + 1
-                else:
-                    if ro == 0:
-                        continue
-                    a = rs
-                    b = rs + ro
-                if q > 0 and ru[q - 1] == u and rr[q - 1] == gr and rb[q - 1] == a:
-                    rb[q - 1] = b
-                else:
-                    ru[q] = u
-                    rr[q] = gr
-                    ra[q] = a
-                    rb[q] = b
-                    q += 1
-            continue
-        if keep:
-            eu[p] = u
-            er[p] = gr
-            ec[p] = gc
-            ew[p] = w_cell
-            p += 1
-        if ro == 0:
-            continue
-        if mode == 1 and w_run == 1.0:
-            ru[q] = u
-            rr[q] = gr
-            ra[q] = rs
-            rb[q] = rs + ro
-            q += 1
-        else:
-            for j in range(ro):
-                eu[p] = u
-                er[p] = gr
-                ec[p] = rs + j
-                ew[p] = w_run
-                p += 1
-    return (eu[:p], er[:p], ec[:p], ew[:p]), (ru[:q], rr[:q], ra[:q], rb[:q])
+                n_e += keep + (0 if as_run else ro)
+                n_r += as_run
+        if ne_out + n_e > eu.size:
+            eu = _grown(eu, ne_out + n_e)
+            er = _grown(er, ne_out + n_e)
+            ec = _grown(ec, ne_out + n_e)
+            ew = _grown(ew, ne_out + n_e)
+        if nr_out + n_r > ru.size:
+            ru = _grown(ru, nr_out + n_r)
+            rr = _grown(rr, nr_out + n_r)
+            ra = _grown(ra, nr_out + n_r)
+            rb = _grown(rb, nr_out + n_r)
+        off = 0.0
+        for t in range(nc):
+            keep, ro, as_run, gr, gc, rs, wc, wr, lost = _clip(
+                w_row[t],
+                w_col[t],
+                w_val[t],
+                w_run[t],
+                w_bnd[t],
+                w_len[t],
+                ox[u],
+                oy[u],
+                width,
+                height,
+                floor,
+                snap,
+                touched,
+                mode,
+            )
+            off += lost
+            if mode == 2:
+                # disjoint segments in increasing column order: join those that touch
+                for seg in range(2):
+                    if seg == 0:
+                        if not keep:
+                            continue
+                        sa = gc
+                        sb = gc + 1
+                    else:
+                        if ro == 0:
+                            continue
+                        sa = rs
+                        sb = rs + ro
+                    if (
+                        nr_out > 0
+                        and ru[nr_out - 1] == u
+                        and rr[nr_out - 1] == gr
+                        and rb[nr_out - 1] == sa
+                    ):
+                        rb[nr_out - 1] = sb
+                    else:
+                        ru[nr_out] = u
+                        rr[nr_out] = gr
+                        ra[nr_out] = sa
+                        rb[nr_out] = sb
+                        nr_out += 1
+                continue
+            if keep:
+                eu[ne_out] = u
+                er[ne_out] = gr
+                ec[ne_out] = gc
+                ew[ne_out] = wc
+                ne_out += 1
+            if ro == 0:
+                continue
+            if as_run:
+                ru[nr_out] = u
+                rr[nr_out] = gr
+                ra[nr_out] = rs
+                rb[nr_out] = rs + ro
+                nr_out += 1
+            else:
+                for j in range(ro):
+                    eu[ne_out] = u
+                    er[ne_out] = gr
+                    ec[ne_out] = rs + j
+                    ew[ne_out] = wr
+                    ne_out += 1
+        offgrid[u] += off
+    return (
+        (_trim(eu, ne_out), _trim(er, ne_out), _trim(ec, ne_out), _trim(ew, ne_out)),
+        (_trim(ru, nr_out), _trim(rr, nr_out), _trim(ra, nr_out), _trim(rb, nr_out)),
+    )
