@@ -58,6 +58,11 @@ _SNAP_TO_ONE = 1e-12
 #: processed in groups below it so temporary arrays stay near 100 MB.
 _MAX_PIECES_PER_PASS = 1 << 20
 
+#: The same bound for the compiled ``overlap``/``touched`` kernel, whose
+#: scratch space is one unit's pieces: groups only bound the shifted copies
+#: of the edge coordinates (40 bytes per edge), so they can be far larger.
+_MAX_PIECES_PER_KERNEL = 1 << 23
+
 # shapely type ids (shapely.GeometryType)
 _POLYGON = 3
 _MULTIPOLYGON = 6
@@ -330,7 +335,7 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
     sign = np.asarray(e.sign, dtype=np.float64)
-    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
+    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_KERNEL):
         unit = e.unit[lo:hi]
         entries, run_items = area_weights(
             unit,
@@ -456,13 +461,18 @@ def _center_rule(e: _Edges, n_units, width, height, runs=False):
 
 
 # --------------------------------------------------------------- public API
+def _cat(arrays):
+    """Concatenation of ``arrays`` (the array itself when there is one: no copy)."""
+    return arrays[0] if len(arrays) == 1 else np.concatenate(arrays)
+
+
 def _assemble(n_units, parts, offgrid, runs=False) -> Coverage:
     if runs:
         entries = [p[0] for p in parts]
         cov = _assemble(n_units, entries, offgrid)
         if parts:
             ru, rr, ra, rb = (
-                np.asarray(np.concatenate(v), dtype=np.int64)
+                np.asarray(_cat(v), dtype=np.int64)
                 for v in zip(*[p[1] for p in parts], strict=True)
             )
         else:
@@ -470,7 +480,7 @@ def _assemble(n_units, parts, offgrid, runs=False) -> Coverage:
         cov.runs = (ru, rr, ra, rb)
         return cov
     if parts:
-        unit, row, col, weight = (np.concatenate(v) for v in zip(*parts, strict=True))
+        unit, row, col, weight = (_cat(v) for v in zip(*parts, strict=True))
     else:
         unit = row = col = np.zeros(0, dtype=np.int64)
         weight = np.zeros(0)

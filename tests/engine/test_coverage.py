@@ -238,7 +238,9 @@ def test_many_passes_give_the_same_weights(monkeypatch):
     rng = np.random.default_rng(3)
     geoms = [star(rng, rng.uniform(0, 50), rng.uniform(0, 50), 30, 2, 12) for _ in range(30)]
     one = polygon_coverage(geoms, IDENTITY, 50, 50)
+    # groups of a few units for the numpy passes and the compiled kernel alike
     monkeypatch.setattr(cov_mod, "_MAX_PIECES_PER_PASS", 200)
+    monkeypatch.setattr(cov_mod, "_MAX_PIECES_PER_KERNEL", 200)
     many = polygon_coverage(geoms, IDENTITY, 50, 50)
     for name in ("unit", "row", "col"):
         assert_array_equal(getattr(one, name), getattr(many, name))
