@@ -38,7 +38,7 @@ import numpy as np
 import shapely
 from affine import Affine
 
-from covextract.engine.kernels import area_weights
+from covextract.engine.kernels import area_weights, center_runs
 from covextract.errors import GeometryError, RasterError, RecipeError, RecipeProblem, TableError
 
 __all__ = ["Coverage", "KERNEL_VERSION", "point_coverage", "polygon_coverage"]
@@ -54,14 +54,11 @@ _POINT_METHODS = ("nearest", "bilinear")
 #: accumulation (0.9999999999999998) and are stored as exactly 1.
 _SNAP_TO_ONE = 1e-12
 
-#: Upper bound on the edge pieces handled in one vectorised pass; units are
-#: processed in groups below it so temporary arrays stay near 100 MB.
-_MAX_PIECES_PER_PASS = 1 << 20
-
-#: The same bound for the compiled ``overlap``/``touched`` kernel, whose
-#: scratch space is one unit's pieces: groups only bound the shifted copies
-#: of the edge coordinates (40 bytes per edge), so they can be far larger.
-_MAX_PIECES_PER_KERNEL = 1 << 23
+#: Upper bound on the edge pieces (or scanline crossings) handled in one call
+#: of a compiled kernel, whose scratch space is one unit's: groups of units
+#: below it only bound the shifted copies of the edge coordinates (40 bytes
+#: per edge) and the runs of one call.
+_MAX_PIECES_PER_PASS = 1 << 23
 
 # shapely type ids (shapely.GeometryType)
 _POLYGON = 3
@@ -335,7 +332,7 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
     sign = np.asarray(e.sign, dtype=np.float64)
-    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_KERNEL):
+    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
         unit = e.unit[lo:hi]
         entries, run_items = area_weights(
             unit,
@@ -372,32 +369,9 @@ def _center_pass(e: _Edges, lo: int, hi: int):
     """
     unit = e.unit[lo:hi]
     x0, y0, x1, y1 = e.x0[lo:hi], e.y0[lo:hi], e.x1[lo:hi], e.y1[lo:hi]
-    asc = y0 < y1
-    dy1 = np.where(asc, y0, y1)
-    dy2 = np.where(asc, y1, y0)
-    dx1 = np.where(asc, x0, x1)
-    dx2 = np.where(asc, x1, x0)
-    sloped = dy1 < dy2
-    # candidate rows with one row of slack either side; the exact test below
-    # decides, in GDAL's own float comparisons
-    r_first = np.where(sloped, np.ceil(dy1 - 0.5) - 1, 0).astype(np.int64)
-    r_stop = np.where(sloped, np.ceil(dy2 - 0.5) + 1, 0).astype(np.int64)
-    n = r_stop - r_first
-    seg = np.repeat(np.arange(unit.size), n)
-    row = r_first[seg] + (np.arange(seg.size) - np.repeat(np.cumsum(n) - n, n))
-    yc = row + 0.5
-    hit = (yc >= dy1[seg]) & (yc < dy2[seg])
-    seg, row, yc = seg[hit], row[hit], yc[hit]
-    xi = (yc - dy1[seg]) * (dx2[seg] - dx1[seg]) / (dy2[seg] - dy1[seg]) + dx1[seg]
-    col = np.floor(xi + 0.5).astype(np.int64)
-    cu = unit[seg]
-    order = _sort_cells(cu, row, col)
-    cu, row, col = cu[order], row[order], col[order]
-    # every closed ring crosses each scanline an even number of times, and the
-    # sort keeps each (unit, row) group contiguous, so pairs never straddle groups
-    start, stop = col[0::2], col[1::2]
-    runs_u, runs_r = cu[0::2], row[0::2]
-    keep = stop > start
+    # crossings, sorted per (unit, row) and paired, in one compiled loop
+    # (kernels.center_runs); runs with stop > start only
+    runs_u, runs_r, start, stop = center_runs(unit, x0, y0, x1, y1)
 
     # GDAL also fills a horizontal edge lying exactly on a pixel-centre line
     # when it runs towards -x. Measured with rasterio 1.4 / GDAL 3.10, GDAL
@@ -412,12 +386,12 @@ def _center_pass(e: _Edges, lo: int, hi: int):
         fr = np.floor(y0[flat]).astype(np.int64)
         fu = unit[flat]
         fk = fe > fs
-        runs_u = np.concatenate([runs_u[keep], fu[fk]])
-        runs_r = np.concatenate([runs_r[keep], fr[fk]])
-        start = np.concatenate([start[keep], fs[fk]])
-        stop = np.concatenate([stop[keep], fe[fk]])
+        runs_u = np.concatenate([runs_u, fu[fk]])
+        runs_r = np.concatenate([runs_r, fr[fk]])
+        start = np.concatenate([start, fs[fk]])
+        stop = np.concatenate([stop, fe[fk]])
         return _merge_runs(runs_u, runs_r, start, stop)
-    return runs_u[keep], runs_r[keep], start[keep], stop[keep]
+    return runs_u, runs_r, start, stop
 
 
 def _merge_runs(u, r, a, b):
