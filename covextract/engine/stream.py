@@ -1,10 +1,10 @@
 """Streaming a raster through a weight set: each block read once per pass.
 
 Blocks are independent tasks: read the block, mask it, reduce it to a
-:class:`~covextract.engine.reduce.BlockPartial`. They run inline (one
-thread, the default), on a pool of local threads (GeoTIFF decoding and the
-compiled reductions release the GIL) or as tasks of a dask.distributed
-cluster. Tasks are submitted in bounded batches and their partials merged in
+:class:`~covextract.engine.reduce.BlockPartial`. They run on a pool of
+local threads (by default one per core: GeoTIFF decoding and the compiled
+reduction release the GIL), inline with one thread, or as tasks of a
+dask.distributed cluster. Tasks are submitted in bounded batches and their partials merged in
 the fixed order of the weight set, so memory stays bounded and the result is
 bit-identical whatever the number of threads or workers.
 """
