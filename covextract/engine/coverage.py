@@ -38,13 +38,14 @@ import numpy as np
 import shapely
 from affine import Affine
 
+from covextract.engine.kernels import area_weights, center_runs
 from covextract.errors import GeometryError, RasterError, RecipeError, RecipeProblem, TableError
 
 __all__ = ["Coverage", "KERNEL_VERSION", "point_coverage", "polygon_coverage"]
 
 #: Version of the kernels' arithmetic; part of the weight-cache fingerprint, so
 #: bump it whenever a kernel can return different weights for the same input.
-KERNEL_VERSION = 2
+KERNEL_VERSION = 3
 
 _POLYGON_RULES = ("overlap", "center", "touched")
 _POINT_METHODS = ("nearest", "bilinear")
@@ -53,9 +54,11 @@ _POINT_METHODS = ("nearest", "bilinear")
 #: accumulation (0.9999999999999998) and are stored as exactly 1.
 _SNAP_TO_ONE = 1e-12
 
-#: Upper bound on the edge pieces handled in one vectorised pass; units are
-#: processed in groups below it so temporary arrays stay near 100 MB.
-_MAX_PIECES_PER_PASS = 1 << 20
+#: Upper bound on the edge pieces (or scanline crossings) handled in one call
+#: of a compiled kernel, whose scratch space is one unit's: groups of units
+#: below it only bound the shifted copies of the edge coordinates (40 bytes
+#: per edge) and the runs of one call.
+_MAX_PIECES_PER_PASS = 1 << 23
 
 # shapely type ids (shapely.GeometryType)
 _POLYGON = 3
@@ -251,7 +254,7 @@ def _pixel_edges(arr: np.ndarray, idx: np.ndarray, inv: Affine) -> _Edges:
     is_exterior = np.ones(n_rings, dtype=bool)
     is_exterior[1:] = ring_part[1:] != ring_part[:-1]
     # with x right and y down, a ring of positive shoelace area accumulates
-    # coverage -1 inside (see _overlap_pass); exteriors must give +1
+    # coverage -1 inside (see kernels.area_weights); exteriors must give +1
     ring_sign = np.where(is_exterior, -np.sign(area2), np.sign(area2))
     # the affine map preserves orientation iff its determinant is positive
     world_ccw = np.sign(area2) * np.sign(inv.determinant) > 0
@@ -276,140 +279,6 @@ def _unit_groups(unit: np.ndarray, load: np.ndarray, limit: int):
 
 
 # ------------------------------------------------------------ overlap kernel
-def _split_at_integers(u0, v0, u1, v1, parent):
-    """Cut segments at every integer value of ``u`` strictly inside them.
-
-    Returns the pieces ``(u0, v0, u1, v1, parent)``, each piece in the order
-    of travel along its segment. The crossing points are computed once and
-    shared by the two pieces that meet there, so the pieces join exactly.
-    """
-    lo = np.minimum(u0, u1)
-    hi = np.maximum(u0, u1)
-    n = np.maximum(np.ceil(hi) - np.floor(lo) - 1.0, 0.0).astype(np.int64)
-    seg = np.repeat(np.arange(u0.size), n + 1)
-    first = np.cumsum(n + 1) - (n + 1)
-    j = np.arange(seg.size) - first[seg]
-    up = u1 > u0
-    step = np.where(up, 1.0, -1.0)[seg]
-    base = np.where(up, np.floor(u0), np.ceil(u0))[seg]
-    su0, sv0, su1, sv1, nn = u0[seg], v0[seg], u1[seg], v1[seg], n[seg]
-    ka = base + step * j
-    kb = base + step * (j + 1)
-    a_is_start = j == 0
-    b_is_end = j == nn
-    # segments with du == 0 have no crossings; their nan slope is never selected
-    with np.errstate(divide="ignore", invalid="ignore"):
-        slope = (sv1 - sv0) / (su1 - su0)
-        va = np.where(a_is_start, sv0, sv0 + (ka - su0) * slope)
-        vb = np.where(b_is_end, sv1, sv0 + (kb - su0) * slope)
-    ua = np.where(a_is_start, su0, ka)
-    ub = np.where(b_is_end, su1, kb)
-    return ua, va, ub, vb, parent[seg]
-
-
-def _edge_pieces(e: _Edges, lo: int, hi: int, ox: np.ndarray, oy: np.ndarray):
-    """Edges ``lo:hi`` cut into pieces that each lie within one pixel.
-
-    Coordinates are shifted by the integer origin ``(ox, oy)`` of each unit
-    (exact in floating point) so that ``(c + 1) - x`` keeps its digits far
-    from the grid origin.
-    """
-    unit = e.unit[lo:hi]
-    x0 = e.x0[lo:hi] - ox[unit]
-    x1 = e.x1[lo:hi] - ox[unit]
-    y0 = e.y0[lo:hi] - oy[unit]
-    y1 = e.y1[lo:hi] - oy[unit]
-    parent = np.arange(lo, hi)
-    xa, ya, xb, yb, parent = _split_at_integers(x0, y0, x1, y1, parent)
-    ya, xa, yb, xb, parent = _split_at_integers(ya, xa, yb, xb, parent)
-    return xa, ya, xb, yb, parent
-
-
-@dataclass
-class _Cells:
-    """Accumulated cells of a group of units, in unit-local pixel coordinates.
-
-    One entry per distinct ``(unit, row, col)`` that received an edge
-    contribution, sorted; ``value`` is the cell's coverage, ``run`` the
-    coverage of the cells after it in the row up to the next entry
-    (``run_len`` of them), ``boundary`` whether a boundary piece of positive
-    length runs through the cell's interior.
-    """
-
-    unit: np.ndarray
-    row: np.ndarray
-    col: np.ndarray
-    value: np.ndarray
-    run: np.ndarray
-    run_len: np.ndarray
-    boundary: np.ndarray
-
-
-def _overlap_pass(e: _Edges, lo: int, hi: int, ox, oy) -> _Cells:
-    """Signed-area accumulation for the units of edges ``lo:hi``.
-
-    For a piece inside cell ``(r, c)`` with (oriented) height ``dy`` and
-    mid-point ``x_mid``, the region between the piece and the right edge of
-    the cell has signed area ``dy * ((c + 1) - x_mid)``, and every cell
-    further right in row ``r`` gains ``dy`` in full. Summing over a closed,
-    oriented boundary gives, for each cell, the area of the polygon inside it
-    (Green's theorem, one row strip at a time). The "further right" part is a
-    running sum along the row, kept sparse: it changes only at cells that hold
-    a piece, and between two such cells it is constant (the interior runs).
-    """
-    xa, ya, xb, yb, edge = _edge_pieces(e, lo, hi, ox, oy)
-    unit = e.unit[edge]
-    xm = 0.5 * (xa + xb)
-    ym = 0.5 * (ya + yb)
-    c = np.floor(xm).astype(np.int64)
-    r = np.floor(ym).astype(np.int64)
-    dy = (yb - ya) * e.sign[edge]
-    area = dy * ((c + 1) - xm)
-    # a piece lying on a pixel line belongs to the boundary of the cells on
-    # both sides but to the interior of neither
-    on_line = ((xa == xb) & (xa == np.floor(xa))) | ((ya == yb) & (ya == np.floor(ya)))
-    boundary = ((xa != xb) | (ya != yb)) & ~on_line
-
-    if unit.size == 0:
-        z = np.zeros(0, dtype=np.int64)
-        return _Cells(z, z, z, np.zeros(0), np.zeros(0), z, np.zeros(0, dtype=bool))
-    n = unit.size
-    ev_unit = np.concatenate([unit, unit])
-    ev_row = np.concatenate([r, r])
-    ev_col = np.concatenate([c, c + 1])
-    ev_area = np.concatenate([area, np.zeros(n)])
-    ev_cover = np.concatenate([np.zeros(n), dy])
-    ev_bound = np.concatenate([boundary, np.zeros(n, dtype=bool)])
-
-    order = _sort_cells(ev_unit, ev_row, ev_col)
-    ev_unit, ev_row, ev_col = ev_unit[order], ev_row[order], ev_col[order]
-    new_cell = np.ones(ev_unit.size, dtype=bool)
-    new_cell[1:] = (
-        (ev_unit[1:] != ev_unit[:-1]) | (ev_row[1:] != ev_row[:-1]) | (ev_col[1:] != ev_col[:-1])
-    )
-    starts = np.flatnonzero(new_cell)
-    cu, cr, cc = ev_unit[starts], ev_row[starts], ev_col[starts]
-    a = np.add.reduceat(ev_area[order], starts)
-    cov = np.add.reduceat(ev_cover[order], starts)
-    bnd = np.logical_or.reduceat(ev_bound[order], starts)
-
-    # running sum of the full-width contributions along each row; subtracting
-    # the sum at the row's start keeps the rounding local to the row
-    new_row = np.ones(cu.size, dtype=bool)
-    new_row[1:] = (cu[1:] != cu[:-1]) | (cr[1:] != cr[:-1])
-    csum = np.cumsum(cov)
-    row_start = np.flatnonzero(new_row)
-    before = np.repeat(csum[row_start] - cov[row_start], np.diff(np.r_[row_start, cu.size]))
-    run = csum - before
-    value = a + run
-    last_in_row = np.ones(cu.size, dtype=bool)
-    last_in_row[:-1] = new_row[1:]
-    run_len = np.zeros(cu.size, dtype=np.int64)
-    run_len[:-1] = cc[1:] - cc[:-1] - 1
-    run_len[last_in_row] = 0
-    return _Cells(cu, cr, cc, value, run, run_len, bnd)
-
-
 def _sort_cells(unit, row, col) -> np.ndarray:
     """Permutation sorting cells by ``(unit, row, col)``."""
     if unit.size == 0:
@@ -422,109 +291,6 @@ def _sort_cells(unit, row, col) -> np.ndarray:
         key = ((unit - unit.min()) * nr + (row - r0)) * nc + (col - c0)
         return np.argsort(key, kind="stable")
     return np.lexsort((col, row, unit))
-
-
-def _snap(values: np.ndarray) -> np.ndarray:
-    values = np.where(np.abs(values - 1.0) <= _SNAP_TO_ONE, 1.0, values)
-    return np.minimum(values, 1.0)
-
-
-def _emit(
-    cells: _Cells,
-    cell_keep,
-    cell_w,
-    run_keep,
-    run_w,
-    ox,
-    oy,
-    width,
-    height,
-    offgrid,
-    as_runs=None,
-):
-    """Expand cells and their runs into clipped grid entries.
-
-    ``cell_keep``/``run_keep`` say which cells and runs carry weight,
-    ``cell_w``/``run_w`` the weight. Weight falling off the grid is added to
-    ``offgrid`` (in place) without enumerating off-grid pixels. With
-    ``as_runs`` (``"interior"`` or ``"all"``) the result is ``(entries,
-    runs)``, see :func:`_emit_split`.
-    """
-    gr = cells.row + oy[cells.unit]
-    gc = cells.col + ox[cells.unit]
-    row_on = (gr >= 0) & (gr < height)
-    cell_on = row_on & (gc >= 0) & (gc < width)
-
-    run_len = np.where(run_keep, cells.run_len, 0)
-    rs = np.maximum(gc + 1, 0)
-    re = np.minimum(gc + run_len, width - 1)
-    run_on = np.where(row_on, np.maximum(re - rs + 1, 0), 0)
-
-    off = np.where(cell_keep & ~cell_on, cell_w, 0.0) + run_w * np.where(
-        run_keep, run_len - run_on, 0
-    )
-    offgrid += np.bincount(cells.unit, weights=off, minlength=offgrid.size)
-    if as_runs is not None:
-        return _emit_split(cells, cell_keep & cell_on, cell_w, run_on, rs, run_w, gr, gc, as_runs)
-
-    counts = (cell_keep & cell_on).astype(np.int64) + run_on
-    total = int(counts.sum())
-    src = np.repeat(np.arange(counts.size), counts)
-    pos = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
-    is_cell = (cell_keep & cell_on)[src]
-    # a cell's own entry comes first, then its run (cells to its right)
-    k = pos - is_cell
-    col = np.where(is_cell & (pos == 0), gc[src], rs[src] + k)
-    weight = np.where(is_cell & (pos == 0), cell_w[src], run_w[src])
-    return cells.unit[src], gr[src], col, weight
-
-
-def _emit_split(cells, cell_on, cell_w, run_on, rs, run_w, gr, gc, as_runs):
-    """Clipped cells and runs as ``((unit, row, col, weight), (unit, row, a, b))``.
-
-    ``as_runs == "interior"`` (overlap): runs of weight exactly 1 stay runs,
-    every cell and every other run becomes per-pixel entries, so a cell whose
-    weight only rounds to 1 is never assumed interior. ``"all"`` (touched,
-    every weight 1): cells become runs of one pixel, and runs that touch in a
-    row are joined.
-    """
-    if as_runs == "interior":
-        is_run = (run_on > 0) & (run_w == 1.0)
-        counts = cell_on.astype(np.int64) + np.where(is_run, 0, run_on)
-        total = int(counts.sum())
-        src = np.repeat(np.arange(counts.size), counts)
-        pos = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
-        is_cell = cell_on[src]
-        k = pos - is_cell
-        first = is_cell & (pos == 0)
-        col = np.where(first, gc[src], rs[src] + k)
-        weight = np.where(first, cell_w[src], run_w[src])
-        entries = (cells.unit[src], gr[src], col, weight)
-        runs = (cells.unit[is_run], gr[is_run], rs[is_run], rs[is_run] + run_on[is_run])
-        return entries, runs
-    # every pixel weighs 1: a kept cell is a run of one pixel, directly followed
-    # by its own run when that one starts right after it
-    has_run = run_on > 0
-    u = np.concatenate([cells.unit[cell_on], cells.unit[has_run]])
-    r = np.concatenate([gr[cell_on], gr[has_run]])
-    a = np.concatenate([gc[cell_on], rs[has_run]])
-    b = np.concatenate([gc[cell_on] + 1, rs[has_run] + run_on[has_run]])
-    u, r, a, b = _join_runs(u, r, a, b)
-    z = np.zeros(0, dtype=np.int64)
-    return (z, z, z, np.zeros(0)), (u, r, a, b)
-
-
-def _join_runs(u, r, a, b):
-    """Sort disjoint runs by ``(unit, row, start)`` and join those that touch."""
-    if u.size == 0:
-        return u, r, a, b
-    order = _sort_cells(u, r, a)
-    u, r, a, b = u[order], r[order], a[order], b[order]
-    new = np.ones(u.size, dtype=bool)
-    new[1:] = (u[1:] != u[:-1]) | (r[1:] != r[:-1]) | (a[1:] != b[:-1])
-    first = np.flatnonzero(new)
-    last = np.r_[first[1:], u.size] - 1
-    return u[first], r[first], a[first], b[last]
 
 
 def _unit_origins(e: _Edges, n_units: int):
@@ -541,6 +307,21 @@ def _unit_origins(e: _Edges, n_units: int):
 
 
 def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
+    """``overlap`` and ``touched`` weights by signed-area accumulation.
+
+    For a piece of edge inside cell ``(r, c)`` with (oriented) height ``dy``
+    and mid-point ``x_mid``, the region between the piece and the right edge
+    of the cell has signed area ``dy * ((c + 1) - x_mid)``, and every cell
+    further right in row ``r`` gains ``dy`` in full. Summing over a closed,
+    oriented boundary gives, for each cell, the area of the polygon inside it
+    (Green's theorem, one row strip at a time). The "further right" part is a
+    running sum along the row, kept sparse: it changes only at cells that hold
+    a piece, and between two such cells it is constant (the interior runs).
+    The loops over edges, pieces, rows and cells are compiled
+    (:func:`covextract.engine.kernels.area_weights`); coordinates are shifted
+    by the integer origin of each unit first (exact in floating point) so that
+    ``(c + 1) - x`` keeps its digits far from the grid origin.
+    """
     ox, oy = _unit_origins(e, n_units)
     # shifting by the origin is exact and keeps the accumulation's digits;
     # the integer offsets are restored when the cells are emitted
@@ -548,43 +329,29 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     load = np.abs(np.floor(e.x1) - np.floor(e.x0)) + np.abs(np.floor(e.y1) - np.floor(e.y0)) + 1.0
     offgrid = np.zeros(n_units)
     out = []
+    touched = rule == "touched"
+    mode = (2 if touched else 1) if runs else 0
+    sign = np.asarray(e.sign, dtype=np.float64)
     for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
-        cells = _overlap_pass(e, lo, hi, ox, oy)
-        value = _snap(cells.value)
-        run = _snap(cells.run)
-        run_keep = (run >= floor) & (run > 0)
-        if rule == "overlap":
-            cell_keep = (value >= floor) & (value > 0)
-            emitted = _emit(
-                cells,
-                cell_keep,
-                value,
-                run_keep,
-                run,
-                oxi,
-                oyi,
-                width,
-                height,
-                offgrid,
-                as_runs="interior" if runs else None,
-            )
-        else:  # touched
-            cell_keep = cells.boundary | ((value >= floor) & (value > 0))
-            ones = np.ones(cells.unit.size)
-            emitted = _emit(
-                cells,
-                cell_keep,
-                ones,
-                run_keep,
-                ones,
-                oxi,
-                oyi,
-                width,
-                height,
-                offgrid,
-                as_runs="all" if runs else None,
-            )
-        out.append(emitted)
+        unit = e.unit[lo:hi]
+        entries, run_items = area_weights(
+            unit,
+            e.x0[lo:hi] - ox[unit],
+            e.y0[lo:hi] - oy[unit],
+            e.x1[lo:hi] - ox[unit],
+            e.y1[lo:hi] - oy[unit],
+            sign[lo:hi],
+            oxi,
+            oyi,
+            width,
+            height,
+            floor,
+            _SNAP_TO_ONE,
+            touched,
+            mode,
+            offgrid,
+        )
+        out.append((entries, run_items) if runs else entries)
     return out, offgrid
 
 
@@ -602,32 +369,9 @@ def _center_pass(e: _Edges, lo: int, hi: int):
     """
     unit = e.unit[lo:hi]
     x0, y0, x1, y1 = e.x0[lo:hi], e.y0[lo:hi], e.x1[lo:hi], e.y1[lo:hi]
-    asc = y0 < y1
-    dy1 = np.where(asc, y0, y1)
-    dy2 = np.where(asc, y1, y0)
-    dx1 = np.where(asc, x0, x1)
-    dx2 = np.where(asc, x1, x0)
-    sloped = dy1 < dy2
-    # candidate rows with one row of slack either side; the exact test below
-    # decides, in GDAL's own float comparisons
-    r_first = np.where(sloped, np.ceil(dy1 - 0.5) - 1, 0).astype(np.int64)
-    r_stop = np.where(sloped, np.ceil(dy2 - 0.5) + 1, 0).astype(np.int64)
-    n = r_stop - r_first
-    seg = np.repeat(np.arange(unit.size), n)
-    row = r_first[seg] + (np.arange(seg.size) - np.repeat(np.cumsum(n) - n, n))
-    yc = row + 0.5
-    hit = (yc >= dy1[seg]) & (yc < dy2[seg])
-    seg, row, yc = seg[hit], row[hit], yc[hit]
-    xi = (yc - dy1[seg]) * (dx2[seg] - dx1[seg]) / (dy2[seg] - dy1[seg]) + dx1[seg]
-    col = np.floor(xi + 0.5).astype(np.int64)
-    cu = unit[seg]
-    order = _sort_cells(cu, row, col)
-    cu, row, col = cu[order], row[order], col[order]
-    # every closed ring crosses each scanline an even number of times, and the
-    # sort keeps each (unit, row) group contiguous, so pairs never straddle groups
-    start, stop = col[0::2], col[1::2]
-    runs_u, runs_r = cu[0::2], row[0::2]
-    keep = stop > start
+    # crossings, sorted per (unit, row) and paired, in one compiled loop
+    # (kernels.center_runs); runs with stop > start only
+    runs_u, runs_r, start, stop = center_runs(unit, x0, y0, x1, y1)
 
     # GDAL also fills a horizontal edge lying exactly on a pixel-centre line
     # when it runs towards -x. Measured with rasterio 1.4 / GDAL 3.10, GDAL
@@ -642,12 +386,12 @@ def _center_pass(e: _Edges, lo: int, hi: int):
         fr = np.floor(y0[flat]).astype(np.int64)
         fu = unit[flat]
         fk = fe > fs
-        runs_u = np.concatenate([runs_u[keep], fu[fk]])
-        runs_r = np.concatenate([runs_r[keep], fr[fk]])
-        start = np.concatenate([start[keep], fs[fk]])
-        stop = np.concatenate([stop[keep], fe[fk]])
+        runs_u = np.concatenate([runs_u, fu[fk]])
+        runs_r = np.concatenate([runs_r, fr[fk]])
+        start = np.concatenate([start, fs[fk]])
+        stop = np.concatenate([stop, fe[fk]])
         return _merge_runs(runs_u, runs_r, start, stop)
-    return runs_u[keep], runs_r[keep], start[keep], stop[keep]
+    return runs_u, runs_r, start, stop
 
 
 def _merge_runs(u, r, a, b):
@@ -691,13 +435,18 @@ def _center_rule(e: _Edges, n_units, width, height, runs=False):
 
 
 # --------------------------------------------------------------- public API
+def _cat(arrays):
+    """Concatenation of ``arrays`` (the array itself when there is one: no copy)."""
+    return arrays[0] if len(arrays) == 1 else np.concatenate(arrays)
+
+
 def _assemble(n_units, parts, offgrid, runs=False) -> Coverage:
     if runs:
         entries = [p[0] for p in parts]
         cov = _assemble(n_units, entries, offgrid)
         if parts:
             ru, rr, ra, rb = (
-                np.asarray(np.concatenate(v), dtype=np.int64)
+                np.asarray(_cat(v), dtype=np.int64)
                 for v in zip(*[p[1] for p in parts], strict=True)
             )
         else:
@@ -705,7 +454,7 @@ def _assemble(n_units, parts, offgrid, runs=False) -> Coverage:
         cov.runs = (ru, rr, ra, rb)
         return cov
     if parts:
-        unit, row, col, weight = (np.concatenate(v) for v in zip(*parts, strict=True))
+        unit, row, col, weight = (_cat(v) for v in zip(*parts, strict=True))
     else:
         unit = row = col = np.zeros(0, dtype=np.int64)
         weight = np.zeros(0)

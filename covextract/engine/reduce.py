@@ -20,6 +20,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from covextract.engine.kernels import block_shift, reduce_runs_block
+
 __all__ = ["BlockPartial", "Accumulator", "reduce_block", "reduce_block_runs"]
 
 
@@ -148,31 +150,6 @@ def reduce_block(
     )
 
 
-def _block_shift(values: np.ndarray, valid: np.ndarray) -> float:
-    """A valid value of the block near the mean of its valid values (0 without any).
-
-    Deviations are summed around it so that Σw·(v−s)² keeps its digits for
-    values like 300 K ± 0.01; taking an actual value of the block (not the
-    mean itself) makes a constant field give deviations, and spreads, of
-    exactly 0. A regular sample of the block is enough to find it.
-    """
-    v = values[::61][valid[::61]]
-    if v.size == 0:
-        v = values[valid]
-        if v.size == 0:
-            return 0.0
-    return float(v[np.argmin(np.abs(v - v.mean()))])
-
-
-def _run_sums(arr: np.ndarray, bounds: np.ndarray) -> np.ndarray:
-    """Σ of ``arr`` over each run ``[start, end)``; ``arr`` is padded by one element."""
-    # reduceat over interleaved [start, end] pairs: the even slots are the runs
-    # (runs have length >= 1, so start < end; end <= size thanks to the pad)
-    if bounds.size == 0:
-        return np.zeros(0)
-    return np.add.reduceat(arr, bounds)[0::2]
-
-
 def reduce_block_runs(
     entries,
     runs,
@@ -188,13 +165,14 @@ def reduce_block_runs(
     """Reduce one block whose weights are per-pixel entries plus runs of weight 1.
 
     The result is the :class:`BlockPartial` of :func:`reduce_block` on the
-    expanded weights, with the same definitions: runs are summed with
-    ``np.add.reduceat`` over the flattened block (cost per run, not per pixel
-    of it, apart from the summation itself) and entries pixel by pixel, then
-    both are combined per unit. Squared deviations are accumulated around
-    one shift per block (:func:`_block_shift`) and turned into
-    Σw·(v − mean)² per unit, equal to the per-pixel result to float rounding
-    (about 1e-13 relative on smooth data).
+    expanded weights, with the same definitions, computed in one compiled
+    loop (:func:`covextract.engine.kernels.reduce_runs_block`): per unit its
+    entries pixel by pixel, then each run over its pixels, so the cost is
+    per covered pixel, with no temporaries of the block's size and no
+    expansion of the runs. Squared deviations are accumulated around one
+    valid value of the block (:func:`covextract.engine.kernels.block_shift`)
+    and turned into Σw·(v − mean)² per unit, equal to the per-pixel result
+    to float rounding (about 1e-13 relative on smooth data).
 
     Parameters
     ----------
@@ -221,154 +199,46 @@ def reduce_block_runs(
     if (run_areas is None) == (pixel_areas is None):
         raise ValueError("give exactly one of run_areas and pixel_areas")
     thresholds = tuple(thresholds)
-    values = np.asarray(values, dtype=np.float64).ravel()
-    valid = np.asarray(valid, dtype=bool).ravel()
-    s = _block_shift(values, valid)
-    n = values.size
+    thr = np.asarray(thresholds, dtype=np.float64)
+    values = np.ascontiguousarray(values, dtype=np.float64).ravel()
+    valid = np.ascontiguousarray(valid, dtype=bool).ravel()
     eu, ep, ec = entries
     ru, rs, rl = runs
-    # reduceat also sums the gaps between consecutive runs ([end_i, start_i+1));
-    # in position order they add up to at most one pass over the block, in unit
-    # order (runs of far-apart units) to many
-    by_pos = np.argsort(rs, kind="stable")
-    ru, rs, rl = ru[by_pos], rs[by_pos], rl[by_pos]
-    if run_areas is not None:
-        run_areas = np.asarray(run_areas)[by_pos]
-
-    # ---- runs: per-pixel columns of the block, padded by one element (0 or ±inf)
-    all_valid = bool(valid.all())
-    bounds = np.empty(2 * ru.size, dtype=np.int64)
-    bounds[0::2] = rs
-    bounds[1::2] = np.asarray(rs, dtype=np.int64) + rl
-    length = np.asarray(rl, dtype=np.float64)
-    d = np.empty(n + 1)
-    d[n] = 0.0
-    np.subtract(values, s, out=d[:n])
-    if not all_valid:
-        # invalid pixels may hold NaN: overwrite rather than multiply by the mask
-        np.copyto(d[:n], 0.0, where=~valid)
-    d2 = d * d
-    okf = np.zeros(n + 1)
-    okf[:n] = valid
-    r_cnt = length if all_valid else _run_sums(okf, bounds)
-    r_d = _run_sums(d, bounds)
-    hits = [valid & (values > t) for t in thresholds]
-
-    def padded(x):
-        out = np.zeros(n + 1)
-        out[:n] = x
-        return out
-
-    if pixel_areas is None:
-        a = np.asarray(run_areas, dtype=np.float64)
-        wf = a if weighting else np.ones(ru.size)
-        r_d2 = _run_sums(d2, bounds)
-        r_w_all = length * wf
-        r_area = length * a / 1e6
-        r_w = r_cnt * wf
-        r_s1 = r_d * wf
-        r_s2 = r_d2 * wf
-        r_csum = s * r_cnt + r_d
-        r_dens = r_csum * a / 1e6
-        r_above = []
-        for h in hits:
-            t_cnt = _run_sums(padded(h.astype(np.float64)), bounds)
-            r_above.append((t_cnt * a / 1e6, t_cnt * wf))
-    else:
-        pa = padded(np.asarray(pixel_areas, dtype=np.float64).ravel())
-        ok_a = okf * pa
-        r_a = _run_sums(pa, bounds)
-        r_oka = _run_sums(ok_a, bounds)
-        r_okad = _run_sums(ok_a * d, bounds)
-        r_area = r_a / 1e6
-        r_csum = s * r_cnt + r_d
-        r_dens = (s * r_oka + r_okad) / 1e6
-        if weighting:
-            r_w_all, r_w, r_s1 = r_a, r_oka, r_okad
-            r_s2 = _run_sums(ok_a * d2, bounds)
-        else:
-            r_w_all, r_w, r_s1 = length, r_cnt, r_d
-            r_s2 = _run_sums(d2, bounds)
-        r_above = []
-        for h in hits:
-            t_a = _run_sums(padded(h) * pa, bounds)
-            t_w = t_a if weighting else _run_sums(padded(h.astype(np.float64)), bounds)
-            r_above.append((t_a / 1e6, t_w))
-    lo = np.empty(n + 1)
-    lo[:n] = values
-    lo[n] = np.inf
-    if all_valid:
-        hi = lo
-    else:
-        hi = lo.copy()
-        np.copyto(lo[:n], np.inf, where=~valid)
-        np.copyto(hi[:n], -np.inf, where=~valid)
-    r_min = np.minimum.reduceat(lo, bounds)[0::2] if ru.size else np.zeros(0)
-    # the pad is never inside a run, so +inf there is harmless for the maximum too
-    r_max = np.maximum.reduceat(hi, bounds)[0::2] if ru.size else np.zeros(0)
-
-    # ---- entries, pixel by pixel, in the same shifted form
-    c = np.asarray(ec, dtype=np.float64)
-    ea = np.asarray(entry_areas, dtype=np.float64)
-    w = c * ea if weighting else c
-    ev = values[ep]
-    eok = valid[ep]
-    ed = np.where(eok, ev - s, 0.0)
-    e_w = np.where(eok, w, 0.0)
-    e_csum = np.where(eok, c * ev, 0.0)
-    e_above = []
-    for t in thresholds:
-        h = eok & (ev > t)
-        e_above.append((np.where(h, c * ea / 1e6, 0.0), np.where(h, w, 0.0)))
-
-    # ---- combine per unit: every sum in one reduceat over the items ordered by
-    # unit (entries first, then runs; a fixed order, so bit-reproducible)
-    eu64 = np.asarray(eu, dtype=np.int64)
-    ru64 = np.asarray(ru, dtype=np.int64)
-    units = np.union1d(eu64, ru64)
-    k = units.size
-    local = np.concatenate([np.searchsorted(units, eu64), np.searchsorted(units, ru64)])
-    order = np.argsort(local, kind="stable")
-    first = np.flatnonzero(np.r_[True, local[order][1:] != local[order][:-1]])
-    pairs = [
-        (w, r_w_all),
-        (c * ea / 1e6, r_area),
-        (eok.astype(np.float64), r_cnt),
-        (e_w, r_w),
-        (e_w * ed, r_s1),
-        (e_w * ed * ed, r_s2),
-        (e_csum, r_csum),
-        (e_csum * ea / 1e6, r_dens),
-    ]
-    for (ea_t, ew_t), (ra_t, rw_t) in zip(e_above, r_above, strict=True):
-        pairs += [(ea_t, ra_t), (ew_t, rw_t)]
-    items = np.empty((len(pairs), local.size))
-    n_e = eu64.size
-    for i, (e_part, r_part) in enumerate(pairs):
-        items[i, :n_e] = e_part
-        items[i, n_e:] = r_part
-    if k:
-        sums = np.add.reduceat(items[:, order], first, axis=1)
-    else:
-        sums = np.zeros((len(pairs), 0))
-    w_all, area_all, cnt_f, wsum, s1, s2, csum, dens = sums[:8]
-    count = np.rint(cnt_f).astype(np.int64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rel = np.where(wsum > 0, s1 / wsum, np.nan)
-    mean = s + rel
-    m2 = np.where(wsum > 0, np.maximum(s2 - s1 * np.where(wsum > 0, rel, 0.0), 0.0), 0.0)
-
-    lmin = np.concatenate([np.where(eok, ev, np.inf), r_min])[order]
-    lmax = np.concatenate([np.where(eok, ev, -np.inf), r_max])[order]
-    vmin = np.minimum.reduceat(lmin, first) if k else np.zeros(0)
-    vmax = np.maximum.reduceat(lmax, first) if k else np.zeros(0)
-    vmin = np.where(count > 0, vmin, np.nan)
-    vmax = np.where(count > 0, vmax, np.nan)
-
-    above_area, above_w = {}, {}
-    for j, t in enumerate(thresholds):
-        above_area[t] = sums[8 + 2 * j]
-        above_w[t] = sums[9 + 2 * j]
+    per_pixel_area = pixel_areas is not None
+    empty = np.zeros(0)
+    (
+        units,
+        w_all,
+        area_all,
+        count,
+        wsum,
+        mean,
+        m2,
+        csum,
+        dens,
+        vmin,
+        vmax,
+        above_a,
+        above_w,
+    ) = reduce_runs_block(
+        values,
+        valid,
+        np.asarray(eu, dtype=np.int32),
+        np.asarray(ep, dtype=np.int32),
+        np.asarray(ec, dtype=np.float64),
+        np.asarray(entry_areas, dtype=np.float64),
+        np.asarray(ru, dtype=np.int32),
+        np.asarray(rs, dtype=np.int32),
+        np.asarray(rl, dtype=np.int32),
+        empty if per_pixel_area else np.asarray(run_areas, dtype=np.float64),
+        np.asarray(pixel_areas, dtype=np.float64).ravel() if per_pixel_area else empty,
+        per_pixel_area,
+        bool(weighting),
+        block_shift(values, valid),
+        thr,
+    )
+    above_area = {t: above_a[j] for j, t in enumerate(thresholds)}
+    above_wd = {t: above_w[j] for j, t in enumerate(thresholds)}
     return BlockPartial(
         units,
         w_all,
@@ -382,7 +252,7 @@ def reduce_block_runs(
         vmin,
         vmax,
         above_area,
-        above_w,
+        above_wd,
         None,
         wsum,
     )

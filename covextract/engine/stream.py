@@ -1,9 +1,10 @@
 """Streaming a raster through a weight set: each block read once per pass.
 
-Blocks are independent dask tasks: read the block, mask it, reduce it to a
-:class:`~covextract.engine.reduce.BlockPartial`. They run on local threads
-by default (GeoTIFF decoding releases the GIL) or on a dask.distributed
-cluster. Tasks are submitted in bounded batches and their partials merged in
+Blocks are independent tasks: read the block, mask it, reduce it to a
+:class:`~covextract.engine.reduce.BlockPartial`. They run on a pool of
+local threads (by default one per core: GeoTIFF decoding and the compiled
+reduction release the GIL), inline with one thread, or as tasks of a
+dask.distributed cluster. Tasks are submitted in bounded batches and their partials merged in
 the fixed order of the weight set, so memory stays bounded and the result is
 bit-identical whatever the number of threads or workers.
 """
@@ -11,29 +12,36 @@ bit-identical whatever the number of threads or workers.
 from __future__ import annotations
 
 import os
+import sys
 import time
+from collections import deque
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from covextract.engine.grid import Grid
 from covextract.engine.reduce import Accumulator, reduce_block, reduce_block_runs
-from covextract.engine.weights import WeightSet, merge_parts
+from covextract.engine.weights import WeightSet, expand_runs, merge_parts
 
 __all__ = ["PassStats", "stream_pass", "entry_areas", "default_threads"]
 
 
 def default_threads() -> int:
-    """Threads used when none are asked for: 1.
+    """Threads used when none are asked for: one per usable core.
 
-    Measured on the scale benchmark (2 cores): GeoTIFF decoding scales with
-    threads, but the per-block reduction holds the GIL and dask adds about
-    0.35 ms per task, so 2 threads were 0.6–0.8x the speed of one. Until the
-    reduction releases the GIL, one thread is the faster default; ask for
-    more with ``threads=`` / ``--threads`` (values are bit-identical).
+    GeoTIFF decoding and the compiled block reduction release the GIL, and
+    the local pool costs about 20 µs per block, so a second thread pays: on
+    the scale benchmark (2 cores) a buffers pass took 0.64x the time of one
+    thread. Values are bit-identical whatever the count (partials are merged
+    in block order); ``threads=`` / ``--threads`` overrides it.
     """
-    return 1
+    try:
+        n = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - platforms without affinity
+        n = os.cpu_count() or 1
+    return max(1, n)
 
 
 def entry_areas(grid: Grid, window, pix: np.ndarray) -> np.ndarray:
@@ -56,12 +64,15 @@ class PassStats:
 
 
 def _worker_name() -> str:
-    try:
-        from distributed import get_worker
-
-        return get_worker().address
-    except (ImportError, ValueError):
-        return f"local:{os.getpid()}"
+    # a dask.distributed worker has imported distributed; looking the module up
+    # costs nothing elsewhere (an import attempt per block cost 70 µs)
+    dist = sys.modules.get("distributed")
+    if dist is not None:
+        try:
+            return dist.get_worker().address
+        except ValueError:
+            pass
+    return f"local:{os.getpid()}"
 
 
 _LOCAL = np.arange(1 << 20, dtype=np.int64)
@@ -88,31 +99,43 @@ def _continuous_reducer(weighting, thresholds, keep):
             # one area per row: the runs take it as a scalar each
             run_areas, pixel_areas = grid.pixel_areas(r0 + runs[1] // w), None
         else:
-            rows, cols = np.divmod(np.arange(h * w, dtype=np.int64), w)
-            run_areas, pixel_areas = None, grid.pixel_areas(r0 + rows, c0 + cols)
-        return reduce_block_runs(
+            # projected areas cost a coordinate transformation per pixel: only
+            # at the runs' pixels (the kernel reads no other) unless they fill the block
+            if int(runs[2].sum(dtype=np.int64)) >= h * w // 2:
+                pix = np.arange(h * w, dtype=np.int64)
+            else:
+                pix = expand_runs(*runs)[1]
+            pixel_areas = np.zeros(h * w)
+            rows, cols = np.divmod(pix, w)
+            pixel_areas[pix] = grid.pixel_areas(r0 + rows, c0 + cols)
+            run_areas = None
+        values, valid = values.ravel(), valid.ravel()
+        part = reduce_block_runs(
             entries,
             runs,
-            values.ravel(),
-            valid.ravel(),
+            values,
+            valid,
             entry_areas(grid, window, entries[1]),
             run_areas=run_areas,
             pixel_areas=pixel_areas,
             weighting=weighting,
             thresholds=thresholds,
         )
+        if keep:
+            # percentiles: the (unit, value, weight) triples of valid pixels as
+            # well; the moments stay the run reduction's, so asking for a
+            # percentile never changes a unit's mean
+            unit, pix, cov = merge_parts(window, *entries, *runs)
+            ok = valid[pix]
+            wt = cov * entry_areas(grid, window, pix) if weighting else cov
+            part.dist = (unit[ok].astype(np.int32), values[pix][ok], wt[ok])
+        return part
 
     reduce.gathers = True  # accepts values already gathered at the weights' pixels
-    # without percentiles the runs are reduced as runs (a per-pixel weight factor,
-    # known only once the block is read, still sends the block to the per-pixel path)
-    reduce.runs = None if keep else reduce_runs
+    # every block goes to the run reduction except when a per-pixel weight
+    # factor (known only once the block is read) sends it to the per-pixel path
+    reduce.runs = reduce_runs
     return reduce
-
-
-#: The run reduction costs about 20 ns per pixel of the whole block, the
-#: per-pixel one about 90 ns per weight (measured on the scale benchmark), so
-#: runs are reduced as runs when the weights use at least a quarter of the block.
-_RUNS_MIN_SHARE = 0.25
 
 
 def _block_task(source, grid, window, parts, reducer):
@@ -120,11 +143,10 @@ def _block_task(source, grid, window, parts, reducer):
     t0 = time.perf_counter()
     stored = source.read_block(window)
     t1 = time.perf_counter()
-    reduce_runs = getattr(reducer, "runs", None) if runs[0].size else None
-    if reduce_runs is not None:
-        used = entries[0].size + int(runs[2].sum(dtype=np.int64))
-        if used < _RUNS_MIN_SHARE * window[2] * window[3]:
-            reduce_runs = None
+    # the compiled run reduction costs per covered pixel whatever share of the
+    # block the weights use, so it takes every block it can (no percentiles,
+    # no per-pixel weight factor)
+    reduce_runs = getattr(reducer, "runs", None)
     if reduce_runs is None:
         unit, pix, cov = merge_parts(window, *entries, *runs)
         if getattr(source, "elementwise", False) and getattr(reducer, "gathers", False):
@@ -255,18 +277,21 @@ def stream_pass(
                 progress(len(futures))
         return acc, stats
 
-    import dask
-
+    # local threads: a plain pool (about 20 µs per task; dask's threaded
+    # scheduler cost about 1 ms per block here), a bounded window of blocks in
+    # flight, partials merged in block order
     batch = batch or 4 * threads
-    task = dask.delayed(_block_task, pure=False)
-    for start in range(0, n, batch):
-        jobs = []
-        for b in range(start, min(n, start + batch)):
+    with ThreadPoolExecutor(threads, thread_name_prefix="covextract-block") as pool:
+        pending: deque = deque()
+        for b in range(n):
             window, *parts = weights.block_parts(b)
-            jobs.append(task(source, grid, window, parts, *args))
-        results = dask.compute(*jobs, scheduler="threads", num_workers=threads)
-        for result in results:
-            merge(result)
-        if progress is not None:
-            progress(len(jobs))
+            pending.append(pool.submit(_block_task, source, grid, window, parts, *args))
+            if len(pending) >= batch:
+                merge(pending.popleft().result())
+                if progress is not None:
+                    progress(1)
+        while pending:
+            merge(pending.popleft().result())
+            if progress is not None:
+                progress(1)
     return acc, stats

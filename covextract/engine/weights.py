@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from covextract.engine.grid import Grid
+from covextract.engine.kernels import group_by_block
 
 __all__ = ["WeightSet", "weights_from_coverage", "expand_runs"]
 
@@ -199,14 +200,6 @@ def merge_parts(window, unit, pix, cov, run_unit, run_pix, run_len):
     return u[order], p[order], c[order]
 
 
-def _group_by_block(block_id: np.ndarray, n_blocks: int) -> np.ndarray:
-    """Stable permutation grouping items by block (a radix sort when ids fit in uint16)."""
-    if n_blocks < 2**16:
-        # numpy's stable sort of 16-bit integers is a radix sort: linear time
-        return np.argsort(block_id.astype(np.uint16), kind="stable")
-    return np.argsort(block_id, kind="stable")
-
-
 def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
     """Group coverage entries (unit, row, col, weight) by the grid's blocks.
 
@@ -224,33 +217,23 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         raise ValueError("grid has no pixels")
     bh, bw = windows[0][2], windows[0][3]
     n_bcols = -(-grid.width // bw)
-    n_blocks = n_bcols * -(-grid.height // bh)
-    row = np.asarray(coverage.row, dtype=np.int64)
-    col = np.asarray(coverage.col, dtype=np.int64)
-    block_id = (row // bh) * n_bcols + (col // bw)
-    # a stable grouping keeps each block's entries in (unit, row, col) order
-    order = _group_by_block(block_id, n_blocks)
-    counts = np.bincount(block_id, minlength=n_blocks)
-
     runs = getattr(coverage, "runs", None)
-    if runs is not None and runs[0].size:
-        ru, rr, ra, rb = (np.asarray(v, dtype=np.int64) for v in runs)
-        # cut runs at block column boundaries: piece k of a run lies in block column bc0 + k
-        bc0 = ra // bw
-        pieces = (rb - 1) // bw - bc0 + 1
-        src = np.repeat(np.arange(ru.size), pieces)
-        bc = bc0[src] + (np.arange(src.size) - np.repeat(np.cumsum(pieces) - pieces, pieces))
-        pr = rr[src]
-        pa = np.maximum(ra[src], bc * bw)
-        pb = np.minimum(rb[src], (bc + 1) * bw)
-        run_block = (pr // bh) * n_bcols + bc
-        run_order = _group_by_block(run_block, n_blocks)
-        run_counts = np.bincount(run_block, minlength=n_blocks)
-    else:
-        src = np.zeros(0, dtype=np.int64)
-        ru = pr = pa = pb = run_block = run_order = src
-        run_counts = np.zeros(n_blocks, dtype=np.int64)
-
+    if runs is None:
+        z = np.zeros(0, dtype=np.int64)
+        runs = (z, z, z, z)
+    # one stable counting sort by block, runs cut at block columns, indices
+    # made block-local, in a compiled loop (kernels.group_by_block)
+    counts, run_counts, unit, pix, cov, r_unit, r_pix, r_len = group_by_block(
+        np.asarray(coverage.unit, dtype=np.int64),
+        np.asarray(coverage.row, dtype=np.int64),
+        np.asarray(coverage.col, dtype=np.int64),
+        np.asarray(coverage.weight, dtype=np.float64),
+        *(np.asarray(v, dtype=np.int64) for v in runs),
+        int(grid.width),
+        int(grid.height),
+        int(bh),
+        int(bw),
+    )
     ids = np.flatnonzero(counts + run_counts)
     starts = np.concatenate([[0], np.cumsum(counts[ids])]).astype(np.int64)
     run_starts = np.concatenate([[0], np.cumsum(run_counts[ids])]).astype(np.int64)
@@ -259,27 +242,18 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         r0 = int(bid // n_bcols) * bh
         c0 = int(bid % n_bcols) * bw
         win_of.append((r0, c0, min(bh, grid.height - r0), min(bw, grid.width - c0)))
-
-    def local(bids, r, c):
-        r0s = (bids // n_bcols) * bh
-        c0s = (bids % n_bcols) * bw
-        widths = np.minimum(bw, grid.width - c0s)
-        return ((r - r0s) * widths + (c - c0s)).astype(np.int32)
-
-    bid_e = block_id[order]
-    bid_r = run_block[run_order]
     return WeightSet(
         n_units=int(coverage.n_units),
         grid_fingerprint=grid.fingerprint,
         rule=rule,
         windows=win_of,
         starts=starts,
-        unit=np.asarray(coverage.unit, dtype=np.int32)[order],
-        pix=local(bid_e, row[order], col[order]),
-        cov=np.asarray(coverage.weight, dtype=np.float64)[order],
+        unit=unit,
+        pix=pix,
+        cov=cov,
         offgrid=np.asarray(coverage.offgrid, dtype=np.float64),
         run_starts=run_starts,
-        run_unit=ru[src][run_order].astype(np.int32),
-        run_pix=local(bid_r, pr[run_order], pa[run_order]),
-        run_len=(pb - pa)[run_order].astype(np.int32),
+        run_unit=r_unit,
+        run_pix=r_pix,
+        run_len=r_len,
     )

@@ -244,6 +244,15 @@ def test_many_passes_give_the_same_weights(monkeypatch):
         assert_array_equal(getattr(one, name), getattr(many, name))
     assert_allclose(one.weight, many.weight, rtol=0, atol=1e-15)
     assert_allclose(one.offgrid, many.offgrid, rtol=0, atol=1e-12)
+    # the center kernel in groups too: the same runs
+    monkeypatch.undo()
+    one = polygon_coverage(geoms, IDENTITY, 50, 50, "center", runs=True)
+    monkeypatch.setattr(cov_mod, "_MAX_PIECES_PER_PASS", 200)
+    many = polygon_coverage(geoms, IDENTITY, 50, 50, "center", runs=True)
+    for a, b in zip(one.runs, many.runs, strict=True):
+        assert_array_equal(a, b)
+    assert one.runs[0].size > 100
+    assert_array_equal(one.offgrid, many.offgrid)
 
 
 def test_missing_and_empty_units_keep_their_place():

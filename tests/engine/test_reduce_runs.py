@@ -17,6 +17,7 @@ from shapely.geometry import Point
 import covextract.engine.stream as stream
 from covextract.engine.coverage import polygon_coverage
 from covextract.engine.grid import Grid
+from covextract.engine.reduce import Accumulator
 from covextract.engine.weights import weights_from_coverage
 
 
@@ -69,6 +70,16 @@ GRIDS = {
 FIELDS = ("w_all", "w_base", "area_all", "w", "csum", "dens")
 
 
+def _per_pixel_reducer(weighting, thresholds, keep=False):
+    base = stream._continuous_reducer(weighting, thresholds, keep)
+
+    def per_pixel(*args, **kwargs):
+        return base(*args, **kwargs)
+
+    per_pixel.gathers = True
+    return per_pixel
+
+
 def _passes(grid, rule, weighting, thresholds, monkeypatch, seed=4):
     data, geoms = _scene(grid, seed)
     src = ArraySource(grid, data, -9999.0)
@@ -76,8 +87,6 @@ def _passes(grid, rule, weighting, thresholds, monkeypatch, seed=4):
     per_pixel = weights_from_coverage(polygon_coverage(*args), grid, rule)
     with_runs = weights_from_coverage(polygon_coverage(*args, runs=True), grid, rule)
     assert with_runs.n_runs > 0
-    # every block with runs takes the run path
-    monkeypatch.setattr(stream, "_RUNS_MIN_SHARE", 0.0)
     calls = []
     original = stream.reduce_block_runs
 
@@ -86,15 +95,29 @@ def _passes(grid, rule, weighting, thresholds, monkeypatch, seed=4):
         return original(*a, **k)
 
     monkeypatch.setattr(stream, "reduce_block_runs", counting)
+    # the oracle: the per-pixel path (reduce_block), what a reducer without a
+    # run reduction gets
     ref, _ = stream.stream_pass(
-        per_pixel, grid, src, weighting=weighting, thresholds=thresholds, threads=1
+        per_pixel,
+        grid,
+        src,
+        weighting=weighting,
+        thresholds=thresholds,
+        threads=1,
+        reducer=_per_pixel_reducer(weighting, thresholds),
+        accumulator=Accumulator(len(geoms), thresholds),
     )
     assert not calls
+    # every block without percentiles takes the compiled run path, runs or not
     got, _ = stream.stream_pass(
         with_runs, grid, src, weighting=weighting, thresholds=thresholds, threads=1
     )
-    assert calls, "the run path was not taken"
-    return ref, got
+    assert len(calls) == len(with_runs.windows), "the run path was not taken for every block"
+    entries_only, _ = stream.stream_pass(
+        per_pixel, grid, src, weighting=weighting, thresholds=thresholds, threads=1
+    )
+    assert len(calls) == len(with_runs.windows) + len(per_pixel.windows)
+    return ref, got, entries_only
 
 
 def _assert_equal_stats(ref, got):
@@ -125,11 +148,12 @@ def test_run_path_equals_per_pixel_path(grid_name, weighting, rule, monkeypatch)
     grid = GRIDS[grid_name]
     if grid_name == "mercator":
         assert grid.area_varies and not grid.is_geographic
-    ref, got = _passes(grid, rule, weighting, (300.0, 300.005), monkeypatch)
+    ref, got, entries_only = _passes(grid, rule, weighting, (300.0, 300.005), monkeypatch)
     _assert_equal_stats(ref, got)
+    _assert_equal_stats(ref, entries_only)
 
 
-def test_constant_field_has_spread_exactly_zero(monkeypatch):
+def test_constant_field_has_spread_exactly_zero():
     grid = GRIDS["latlon"]
     data, geoms = _scene(grid, 9)
     data = np.where(data == -9999.0, -9999.0, 287.15)
@@ -137,21 +161,19 @@ def test_constant_field_has_spread_exactly_zero(monkeypatch):
     ws = weights_from_coverage(
         polygon_coverage(geoms, grid.transform, grid.width, grid.height, runs=True), grid, "overlap"
     )
-    monkeypatch.setattr(stream, "_RUNS_MIN_SHARE", 0.0)
     acc, _ = stream.stream_pass(ws, grid, src, weighting=True, threads=1)
     has = acc.count > 0
     assert_array_equal(acc.m2[has], 0.0)
     assert_array_equal(acc.mean[has], 287.15)
 
 
-def test_run_path_threads_are_bit_identical(monkeypatch):
+def test_run_path_threads_are_bit_identical():
     grid = GRIDS["mercator"]
     data, geoms = _scene(grid, 5, n_units=40)
     src = ArraySource(grid, data, -9999.0)
     ws = weights_from_coverage(
         polygon_coverage(geoms, grid.transform, grid.width, grid.height, runs=True), grid, "overlap"
     )
-    monkeypatch.setattr(stream, "_RUNS_MIN_SHARE", 0.0)
     one, _ = stream.stream_pass(ws, grid, src, weighting=True, thresholds=(300.0,), threads=1)
     two, _ = stream.stream_pass(ws, grid, src, weighting=True, thresholds=(300.0,), threads=2)
     for name in (*FIELDS, "count", "mean", "m2", "vmin", "vmax"):
@@ -166,7 +188,7 @@ def test_run_path_spread_is_at_least_as_accurate(grid_name, monkeypatch):
     over the per-pixel weights (common practice for a reference variance).
     """
     grid = GRIDS[grid_name]
-    ref, got = _passes(grid, "center", True, (), monkeypatch)
+    ref, got, _ = _passes(grid, "center", True, (), monkeypatch)
     data, geoms = _scene(grid, 4)
     cov = polygon_coverage(geoms, grid.transform, grid.width, grid.height, "center")
     v = data[cov.row, cov.col].astype(np.longdouble)
@@ -183,3 +205,61 @@ def test_run_path_spread_is_at_least_as_accurate(grid_name, monkeypatch):
         err_got.append(float(abs(np.sqrt(got.m2[u] / got.w[u]) - exact) / exact))
     assert max(err_got) < 1e-11
     assert max(err_got) <= max(err_ref)
+
+
+@pytest.mark.parametrize("grid_name", ["latlon", "mercator"])
+def test_percentiles_do_not_change_the_moments(grid_name):
+    """Asking for percentiles keeps every other statistic bit-identical.
+
+    The triples kept for percentiles equal the per-pixel path's.
+    """
+    grid = GRIDS[grid_name]
+    data, geoms = _scene(grid, 6)
+    src = ArraySource(grid, data, -9999.0)
+    args = (geoms, grid.transform, grid.width, grid.height, "overlap")
+    ws = weights_from_coverage(polygon_coverage(*args, runs=True), grid, "overlap")
+    plain, _ = stream.stream_pass(ws, grid, src, weighting=True, thresholds=(300.0,), threads=1)
+    keep, _ = stream.stream_pass(
+        ws, grid, src, weighting=True, thresholds=(300.0,), keep_distribution=True, threads=1
+    )
+    for name in (*FIELDS, "count", "mean", "m2", "vmin", "vmax"):
+        assert_array_equal(getattr(keep, name), getattr(plain, name), err_msg=name)
+    assert_array_equal(keep.above_w[300.0], plain.above_w[300.0])
+    ref, _ = stream.stream_pass(
+        ws,
+        grid,
+        src,
+        weighting=True,
+        threads=1,
+        reducer=_per_pixel_reducer(True, (), keep=True),
+        accumulator=Accumulator(len(geoms), (), True),
+    )
+    got_u, got_v, got_w = keep.distribution()
+    ref_u, ref_v, ref_w = ref.distribution()
+    assert got_u.size > 1000
+    assert_array_equal(got_u, ref_u)
+    assert_array_equal(got_v, ref_v)
+    assert_array_equal(got_w, ref_w)
+
+
+def test_sums_of_a_non_negative_field_stay_non_negative():
+    """Sums are Σv, not shift·n + Σ(v − shift): zeros and tiny values give sums >= 0.
+
+    (An invented rainfall-like field: 70 % zeros, the rest below 1e-3.)
+    """
+    grid = GRIDS["latlon"]
+    data, geoms = _scene(grid, 8, n_units=40)
+    rng = np.random.default_rng(1)
+    field = np.where(rng.uniform(size=data.shape) < 0.7, 0.0, rng.uniform(0, 1e-3, data.shape))
+    field[data == -9999.0] = -9999.0
+    src = ArraySource(grid, field, -9999.0)
+    args = (geoms, grid.transform, grid.width, grid.height, "overlap")
+    ws = weights_from_coverage(polygon_coverage(*args, runs=True), grid, "overlap")
+    acc, _ = stream.stream_pass(ws, grid, src, weighting=True, threads=1)
+    has = acc.count > 0
+    assert has.sum() > 10
+    assert (acc.csum[has] >= 0).all()
+    assert (acc.dens[has] >= 0).all()
+    # the block mean is kept within the unit's extremes, and the merge of
+    # non-negative means stays non-negative
+    assert (acc.mean[has] >= 0).all()

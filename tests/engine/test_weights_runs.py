@@ -105,3 +105,39 @@ def test_group_estimate_with_runs_bounds_stored_items_of_discs():
     # a disc of radius r holds about pi r^2 pixels but only about 12 r boundary cells + 2 r runs
     assert est_runs.sum() < 0.3 * est_pix.sum()
     assert len(unit_groups(geoms, grid, 20_000, runs=True)) < len(unit_groups(geoms, grid, 20_000))
+
+
+@pytest.mark.parametrize("rule", ["overlap", "center"])
+def test_grouping_by_block_keeps_every_weight_at_its_pixel(grid, rule):
+    """Block-local indices turned back into grid cells give the coverage's entries.
+
+    Oracle: the coverage itself (``Coverage.expanded()``), independent of the
+    grouping; each block's items must also stay in (unit, pixel) order.
+    """
+    geoms = [to_world(g, grid.transform) for g in _random_polygons(40, 7, 60, 50)]
+    cov = polygon_coverage(geoms, grid.transform, grid.width, grid.height, rule, runs=True)
+    ws = weights_from_coverage(cov, grid, rule)
+    units, rows, cols, weights = [], [], [], []
+    for b, (r0, c0, h, w) in enumerate(ws.windows):
+        _, (u, p, c), (ru, rp, rl) = ws.block_parts(b)
+        assert (p >= 0).all() and (p < h * w).all()
+        assert (rp % w + rl <= w).all()  # runs stay within their block's row
+        key = u.astype(np.int64) * h * w + p
+        assert (np.diff(key) > 0).all()
+        units.append(u)
+        rows.append(r0 + p // w)
+        cols.append(c0 + p % w)
+        weights.append(c)
+        for uu, pp, ll in zip(ru, rp, rl, strict=True):
+            units.append(np.full(ll, uu))
+            rows.append(np.full(ll, r0 + pp // w))
+            cols.append(c0 + pp % w + np.arange(ll))
+            weights.append(np.ones(ll))
+    u, r, c, wt = (np.concatenate(v) for v in (units, rows, cols, weights))
+    order = np.lexsort((c, r, u))
+    ref = cov.expanded()
+    assert u.size == ref.unit.size > 500
+    assert_array_equal(u[order], ref.unit)
+    assert_array_equal(r[order], ref.row)
+    assert_array_equal(c[order], ref.col)
+    assert_array_equal(wt[order], ref.weight)
