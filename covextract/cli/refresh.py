@@ -12,7 +12,9 @@ from covextract.cli.common import DEBUG_HELP, cli_errors
 def refresh_command(
     recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar; summary only."),
-    threads: int = typer.Option(None, "--threads", min=1, help="Local threads (default: 1)."),
+    threads: int = typer.Option(
+        None, "--threads", min=1, help="Local threads (default: one per core)."
+    ),
     scheduler: str = typer.Option(
         None,
         "--scheduler",

@@ -1,12 +1,14 @@
 """Streaming a raster through a weight set: each block read once per pass.
 
 Blocks are independent tasks: read the block, mask it, reduce it to a
-:class:`~covextract.engine.reduce.BlockPartial`. They run on a pool of
+:class:`~covextract.engine.reduce.BlockPartial`. They run as dask tasks on
 local threads (by default one per core: GeoTIFF decoding and the compiled
-reduction release the GIL), inline with one thread, or as tasks of a
-dask.distributed cluster. Tasks are submitted in bounded batches and their partials merged in
-the fixed order of the weight set, so memory stays bounded and the result is
-bit-identical whatever the number of threads or workers.
+reduction release the GIL; each local task takes a few consecutive blocks so
+dask's per-task cost is paid once for them), inline with one thread, or one
+block per task on a dask.distributed cluster. Tasks are submitted in
+bounded batches and their partials merged in the fixed order of the weight
+set, so memory stays bounded and the result is bit-identical whatever the
+number of threads or workers.
 """
 
 from __future__ import annotations
@@ -14,9 +16,7 @@ from __future__ import annotations
 import os
 import sys
 import time
-from collections import deque
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -136,6 +136,18 @@ def _continuous_reducer(weighting, thresholds, keep):
     # factor (known only once the block is read) sends it to the per-pixel path
     reduce.runs = reduce_runs
     return reduce
+
+
+#: Most consecutive blocks in one local dask task, and the tasks each thread
+#: should get at least (load balance); a task of several blocks pays dask's
+#: per-task cost once.
+GROUP_BLOCKS = 16
+TASKS_PER_THREAD = 8
+
+
+def _group_task(source, grid, items, reducer):
+    """Several blocks in one task: their results in block order."""
+    return [_block_task(source, grid, window, parts, reducer) for window, parts in items]
 
 
 def _block_task(source, grid, window, parts, reducer):
@@ -277,21 +289,28 @@ def stream_pass(
                 progress(len(futures))
         return acc, stats
 
-    # local threads: a plain pool (about 20 µs per task; dask's threaded
-    # scheduler cost about 1 ms per block here), a bounded window of blocks in
-    # flight, partials merged in block order
-    batch = batch or 4 * threads
-    with ThreadPoolExecutor(threads, thread_name_prefix="covextract-block") as pool:
-        pending: deque = deque()
-        for b in range(n):
-            window, *parts = weights.block_parts(b)
-            pending.append(pool.submit(_block_task, source, grid, window, parts, *args))
-            if len(pending) >= batch:
-                merge(pending.popleft().result())
-                if progress is not None:
-                    progress(1)
-        while pending:
-            merge(pending.popleft().result())
-            if progress is not None:
-                progress(1)
+    # local threads: dask tasks of several consecutive blocks each (dask's threaded
+    # scheduler costs about 1 ms per task here, a block about as much), a bounded
+    # number of tasks per compute call, partials merged in block order
+    import dask
+
+    group = max(1, min(GROUP_BLOCKS, n // (threads * TASKS_PER_THREAD)))
+    per_call = batch or 4 * threads
+    task = dask.delayed(_group_task, pure=False)
+    step = group * per_call
+    for start in range(0, n, step):
+        jobs = []
+        for g0 in range(start, min(n, start + step), group):
+            items = []
+            for b in range(g0, min(n, g0 + group)):
+                window, *parts = weights.block_parts(b)
+                items.append((window, parts))
+            jobs.append(task(source, grid, items, *args))
+        done = 0
+        for results in dask.compute(*jobs, scheduler="threads", num_workers=threads):
+            for result in results:
+                merge(result)
+                done += 1
+        if progress is not None:
+            progress(done)
     return acc, stats
