@@ -332,7 +332,8 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
     sign = np.asarray(e.sign, dtype=np.float64)
-    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
+    def one(bounds):
+        lo, hi = bounds
         unit = e.unit[lo:hi]
         entries, run_items = area_weights(
             unit,
@@ -349,10 +350,37 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
             _SNAP_TO_ONE,
             touched,
             mode,
-            offgrid,
+            offgrid,  # each call writes only its own units' cells
         )
-        out.append((entries, run_items) if runs else entries)
+        return (entries, run_items) if runs else entries
+
+    # The compiled kernel releases the GIL and a unit's cells do not depend on
+    # the other units of its call, so groups of whole units run on several
+    # threads; their outputs are joined in unit order (the same arrays whatever
+    # the number of threads).
+    threads = _build_threads()
+    limit = _MAX_PIECES_PER_PASS
+    if threads > 1 and load.sum() > _PARALLEL_MIN_PIECES:
+        limit = min(limit, int(load.sum() // (2 * threads)) + 1)
+    groups = _unit_groups(e.unit, load, limit)
+    if threads > 1 and len(groups) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(min(threads, len(groups))) as pool:
+            out = list(pool.map(one, groups))
+    else:
+        out = [one(g) for g in groups]
     return out, offgrid
+
+
+#: Below this many edge pieces the overlap kernel runs in the calling thread.
+_PARALLEL_MIN_PIECES = 1 << 18
+
+
+def _build_threads() -> int:
+    from covextract.engine.stream import default_threads
+
+    return default_threads()
 
 
 # ------------------------------------------------------------- center kernel
