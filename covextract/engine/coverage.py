@@ -328,7 +328,6 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     oxi, oyi = ox.astype(np.int64), oy.astype(np.int64)
     load = np.abs(np.floor(e.x1) - np.floor(e.x0)) + np.abs(np.floor(e.y1) - np.floor(e.y0)) + 1.0
     offgrid = np.zeros(n_units)
-    out = []
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
     sign = np.asarray(e.sign, dtype=np.float64)
@@ -354,26 +353,10 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
         )
         return (entries, run_items) if runs else entries
 
-    # The compiled kernel releases the GIL and a unit's cells do not depend on
-    # the other units of its call, so groups of whole units run on several
-    # threads; their outputs are joined in unit order (the same arrays whatever
-    # the number of threads).
-    threads = _build_threads()
-    limit = _MAX_PIECES_PER_PASS
-    if threads > 1 and load.sum() > _PARALLEL_MIN_PIECES:
-        limit = min(limit, int(load.sum() // (2 * threads)) + 1)
-    groups = _unit_groups(e.unit, load, limit)
-    if threads > 1 and len(groups) > 1:
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(min(threads, len(groups))) as pool:
-            out = list(pool.map(one, groups))
-    else:
-        out = [one(g) for g in groups]
-    return out, offgrid
+    return _map_unit_groups(one, e.unit, load), offgrid
 
 
-#: Below this many edge pieces the overlap kernel runs in the calling thread.
+#: Below this many edge pieces (or crossings) the kernels run in the calling thread.
 _PARALLEL_MIN_PIECES = 1 << 18
 
 
@@ -442,24 +425,50 @@ def _merge_runs(u, r, a, b):
 
 def _center_rule(e: _Edges, n_units, width, height, runs=False):
     load = np.abs(e.y1 - e.y0) + 3.0
-    offgrid = np.zeros(n_units)
-    out = []
-    for lo, hi in _unit_groups(e.unit, load, _MAX_PIECES_PER_PASS):
-        u, r, a, b = _center_pass(e, lo, hi)
+
+    def one(bounds):
+        u, r, a, b = _center_pass(e, *bounds)
         row_on = (r >= 0) & (r < height)
         ca = np.maximum(a, 0)
         cb = np.minimum(b, width)
         on = np.where(row_on, np.maximum(cb - ca, 0), 0)
-        offgrid += np.bincount(u, weights=(b - a) - on, minlength=n_units)
+        off = np.bincount(u, weights=(b - a) - on, minlength=n_units)
         if runs:
             z = np.zeros(0, dtype=np.int64)
             k = on > 0
-            out.append(((z, z, z, np.zeros(0)), (u[k], r[k], ca[k], cb[k])))
-            continue
+            return ((z, z, z, np.zeros(0)), (u[k], r[k], ca[k], cb[k])), off
         src = np.repeat(np.arange(u.size), on)
         col = ca[src] + (np.arange(src.size) - np.repeat(np.cumsum(on) - on, on))
-        out.append((u[src], r[src], col, np.ones(src.size)))
-    return out, offgrid
+        return (u[src], r[src], col, np.ones(src.size)), off
+
+    done = _map_unit_groups(one, e.unit, load)
+    offgrid = np.zeros(n_units)
+    for _, off in done:
+        # groups hold disjoint units: each unit receives one non-zero term, so
+        # the sum is exact and does not depend on how units were grouped
+        offgrid += off
+    return [part for part, _ in done], offgrid
+
+
+def _map_unit_groups(fn, unit, load):
+    """``fn(bounds)`` over groups of whole units, on the engine's threads, in unit order.
+
+    The compiled kernels release the GIL and a unit's cells do not depend on
+    the other units of its group, so the outputs (joined in unit order) are
+    the same arrays whatever the number of threads.
+    """
+    threads = _build_threads()
+    limit = _MAX_PIECES_PER_PASS
+    total = float(load.sum())
+    if threads > 1 and total > _PARALLEL_MIN_PIECES:
+        limit = min(limit, int(total // (2 * threads)) + 1)
+    groups = _unit_groups(unit, load, limit)
+    if threads > 1 and len(groups) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(min(threads, len(groups))) as pool:
+            return list(pool.map(fn, groups))
+    return [fn(g) for g in groups]
 
 
 # --------------------------------------------------------------- public API

@@ -628,8 +628,8 @@ def test_bilinear_equals_rasterstats(point_raster):
     assert n_interpolated > 50
 
 
-@pytest.mark.parametrize("rule", ["overlap", "touched"])
-def test_overlap_kernel_on_several_threads_gives_the_same_arrays(monkeypatch, rule):
+@pytest.mark.parametrize("rule", ["overlap", "touched", "center"])
+def test_coverage_kernels_on_several_threads_give_the_same_arrays(monkeypatch, rule):
     # Invented discs and holes on a 200 x 200 grid; groups of units on 1, 2 and 3
     # threads must give identical cells, weights, runs and off-grid parts, and the
     # areas must still match shapely's (the oracle of the foundation tests).
