@@ -548,6 +548,21 @@ def timed_periods(cp) -> list:
     return list(t.get("all_periods") or t["periods"])
 
 
+def _engine_options(cp, units, cache, threads, client, **override) -> dict:
+    """The keyword arguments every engine call of a covariate shares (``override`` wins)."""
+    options = {
+        "rule": cp.rule,
+        "area_weighting": cp.area_weighting,
+        "threshold": cp.threshold,
+        "cache": cache,
+        "units_fingerprint": units.fingerprint(),
+        "threads": threads,
+        "client": client,
+    }
+    options.update(override)
+    return options
+
+
 def _timed_period_stats(cp, units, geoms, periods, cache, advance, threads, client):
     """Per-period statistics of a series covariate: ``(values, qa_per_period, builds)``."""
     from covextract.timed import series_statistics
@@ -557,14 +572,8 @@ def _timed_period_stats(cp, units, geoms, periods, cache, advance, threads, clie
         periods,
         geoms,
         cp.stats,
-        rule=cp.rule,
-        area_weighting=cp.area_weighting,
-        threshold=cp.threshold,
-        cache=cache,
-        units_fingerprint=units.fingerprint(),
-        threads=threads,
-        client=client,
         progress=advance,
+        **_engine_options(cp, units, cache, threads, client),
     )
 
 
@@ -661,15 +670,7 @@ def _run_change(cp, units, geoms, cache, advance, threads, client):
     series, how = t["series"], t["spec"].collapse
     later = CollapsedSource([series.source(p) for p in t["periods"]], how)
     earlier = CollapsedSource([series.source(p) for p in t["earlier"]], how)
-    kw = dict(
-        rule=cp.rule,
-        area_weighting=cp.area_weighting,
-        threshold=cp.threshold,
-        cache=cache,
-        units_fingerprint=units.fingerprint(),
-        threads=threads,
-        client=client,
-    )
+    kw = _engine_options(cp, units, cache, threads, client)
     # one pass for the requested statistics and the mean change the relative change needs
     stats = list(cp.stats)
     if not any(s.name == "mean" for s in stats):
@@ -1134,15 +1135,16 @@ def compute_covariate(
             src,
             geoms,
             list(cp.spec.stats) if cp.categorical is not None else cp.stats,
-            rule=cp.rule,
-            area_weighting="on" if weight_by else cp.area_weighting,
-            threshold=cp.threshold,
-            cache=cache,
-            units_fingerprint=units.fingerprint(),
             progress=advance,
-            threads=threads,
-            client=client,
             categorical=_engine_categorical(cp),
+            **_engine_options(
+                cp,
+                units,
+                cache,
+                threads,
+                client,
+                area_weighting="on" if weight_by else cp.area_weighting,
+            ),
         )
         values = {
             col: res.values[s[0] if cp.categorical is not None else s.name]
@@ -1561,13 +1563,8 @@ def _run_proxy(cp, src, geoms, cache, units, advance, threads, client):
         src,
         geoms,
         [parse_stat(spec.light)],
-        rule=cp.rule,
-        area_weighting=cp.area_weighting,
-        cache=cache,
-        units_fingerprint=units.fingerprint(),
         progress=advance,
-        threads=threads,
-        client=client,
+        **_engine_options(cp, units, cache, threads, client, threshold=None),
     )
     x = light.values[spec.light]
     fit = calibrate(x, cp.proxy["known"])

@@ -331,6 +331,7 @@ def _area_rule(e: _Edges, n_units, width, height, rule, floor, runs=False):
     touched = rule == "touched"
     mode = (2 if touched else 1) if runs else 0
     sign = np.asarray(e.sign, dtype=np.float64)
+
     def one(bounds):
         lo, hi = bounds
         unit = e.unit[lo:hi]

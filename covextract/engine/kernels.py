@@ -18,6 +18,26 @@ __all__ = ["area_weights", "block_shift", "center_runs", "group_by_block", "redu
 
 
 @njit(nogil=True, cache=True)
+def _row_offsets(rows, m, per):
+    """Counting-sort offsets of ``rows[:m]``: ``(first row, offsets)``, ``per`` slots per item.
+
+    Items of row ``rmin + r`` go to slots ``offs[r]:offs[r + 1]``.
+    """
+    rmin = rows[0]
+    rmax = rows[0]
+    for q in range(m):
+        rmin = min(rmin, rows[q])
+        rmax = max(rmax, rows[q])
+    nrow = rmax - rmin + 1
+    offs = np.zeros(nrow + 1, np.int64)
+    for q in range(m):
+        offs[rows[q] - rmin + 1] += per
+    for r in range(nrow):
+        offs[r + 1] += offs[r]
+    return rmin, offs
+
+
+@njit(nogil=True, cache=True)
 def block_shift(values, valid):  # pragma: no cover - compiled
     """A valid value of the block near the mean of its valid values (0 without any).
 
@@ -452,17 +472,8 @@ def area_weights(
         if m == 0:
             continue
         # ---- events by row (counting sort), then by column within the row
-        rmin = p_row[0]
-        rmax = p_row[0]
-        for q in range(m):
-            rmin = min(rmin, p_row[q])
-            rmax = max(rmax, p_row[q])
-        nrow = rmax - rmin + 1
-        offs = np.zeros(nrow + 1, np.int64)
-        for q in range(m):
-            offs[p_row[q] - rmin + 1] += 2
-        for r in range(nrow):
-            offs[r + 1] += offs[r]
+        rmin, offs = _row_offsets(p_row, m, 2)
+        nrow = offs.size - 1
         fill = offs[:-1].copy()
         nc = 0
         for q in range(m):
@@ -685,17 +696,8 @@ def center_runs(unit, x0, y0, x1, y1):  # pragma: no cover - compiled
             i += 1
         if m == 0:
             continue
-        rmin = c_row[0]
-        rmax = c_row[0]
-        for q in range(m):
-            rmin = min(rmin, c_row[q])
-            rmax = max(rmax, c_row[q])
-        nrow = rmax - rmin + 1
-        offs = np.zeros(nrow + 1, np.int64)
-        for q in range(m):
-            offs[c_row[q] - rmin + 1] += 1
-        for r in range(nrow):
-            offs[r + 1] += offs[r]
+        rmin, offs = _row_offsets(c_row, m, 1)
+        nrow = offs.size - 1
         fill = offs[:-1].copy()
         for q in range(m):
             r = c_row[q] - rmin

@@ -273,8 +273,12 @@ def open_ledger(state_folder) -> tuple[Ledger, str | None]:
         return Ledger(state_folder), note
 
 
-def _inputs_fp(task, hashes) -> str:
-    return _fingerprint([[role, hashes(path)] for role, path in task.inputs])
+def _inputs_fp(task, hashes) -> str | None:
+    """Fingerprint of a piece's input files (None when ``hashes`` does not know one)."""
+    known = [hashes(path) for _, path in task.inputs]
+    if any(h is None for h in known):
+        return None
+    return _fingerprint([[role, h] for (role, _), h in zip(task.inputs, known, strict=True)])
 
 
 def _row(work, task, inputs_fp, state) -> dict:
@@ -288,14 +292,18 @@ def _row(work, task, inputs_fp, state) -> dict:
     }
 
 
-def _is_done(ledger, work, task, inputs_fp, state) -> bool:
+def _piece_state(ledger, work, task, inputs_fp, state) -> str:
+    """``computed``, ``missing_on_disk`` (recorded, file gone) or ``due`` (see :data:`STATES`)."""
     row = ledger.done(work.fingerprint, task.start)
-    return (
-        row is not None
-        and row.inputs_fingerprint == inputs_fp
-        and row.units_fingerprint == work.units_fp
-        and piece_path(state, work.fingerprint, task.start).is_file()
-    )
+    if (
+        inputs_fp is None
+        or row is None
+        or row.inputs_fingerprint != inputs_fp
+        or row.units_fingerprint != work.units_fp
+    ):
+        return "due"
+    exists = piece_path(state, work.fingerprint, task.start).is_file()
+    return "computed" if exists else "missing_on_disk"
 
 
 def _gaps_and_next(plan) -> tuple[dict, dict]:
@@ -565,7 +573,8 @@ def _refresh(plan, ledger, started, *, progress, threads, scheduler, recompute) 
         per_task = []
         for task in work.tasks:
             fp = _inputs_fp(task, hashes)
-            per_task.append((task, fp, not recompute and _is_done(ledger, work, task, fp, state)))
+            done = _piece_state(ledger, work, task, fp, state) == "computed"
+            per_task.append((task, fp, done and not recompute))
         decisions.append(per_task)
     outputs_fp = _fingerprint(
         {
@@ -698,22 +707,9 @@ def refresh_status(recipe) -> RefreshStatus:
             for task in work.tasks:
                 state_name = "due"
                 if ledger is not None:
-                    row = ledger.done(work.fingerprint, task.start)
-                    hashes = [ledger.recorded_hash(p) for _, p in task.inputs]
-                    fp = (
-                        None
-                        if any(h is None for h in hashes)
-                        else _fingerprint(
-                            [[r, h] for (r, _), h in zip(task.inputs, hashes, strict=True)]
-                        )
-                    )
-                    if (
-                        row is not None
-                        and row.inputs_fingerprint == fp
-                        and row.units_fingerprint == work.units_fp
-                    ):
-                        exists = piece_path(state, work.fingerprint, task.start).is_file()
-                        state_name = "computed" if exists else "missing_on_disk"
+                    # recorded hashes only: status never reads an input file
+                    fp = _inputs_fp(task, ledger.recorded_hash)
+                    state_name = _piece_state(ledger, work, task, fp, state)
                 key = (task.start, task.label)
                 rank = ["computed", "missing_on_disk", "due"]
                 old = states.get(key, "computed")
