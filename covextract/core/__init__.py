@@ -1,0 +1,1 @@
+"""Plain shared types with no I/O: progress events, options shared by every stage."""
