@@ -39,8 +39,8 @@ __all__ = [
 _LAZY = {
     "run_recipe": ("covextract.api", "run_recipe"),
     "zonal_statistics": ("covextract.api", "zonal_statistics"),
-    "check_recipe": ("covextract.pipeline", "check_recipe"),
-    "run": ("covextract.pipeline", "run"),
+    "check_recipe": ("covextract.run", "check_recipe"),
+    "run": ("covextract.run", "run"),
     "refresh": ("covextract.ops.refresh", "refresh"),
     "refresh_status": ("covextract.ops.refresh", "refresh_status"),
     "load_recipe": ("covextract.recipe", "load_recipe"),

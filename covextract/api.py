@@ -32,7 +32,7 @@ def run_recipe(recipe, *, write: bool = True) -> pd.DataFrame:
     --------
     >>> table = run_recipe("recipes/demo.yaml", write=False)  # doctest: +SKIP
     """
-    from covextract.pipeline import run
+    from covextract.run import run
 
     return run(recipe, write=write).table
 

@@ -15,7 +15,7 @@ def check_command(
 ) -> None:
     """Check RECIPE and every input it names; list every problem found."""
     with cli_errors(debug):
-        from covextract.pipeline import check_recipe
+        from covextract.run import check_recipe
 
         report: list = []
         problems = check_recipe(recipe, report=report)

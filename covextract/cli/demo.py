@@ -24,11 +24,11 @@ def demo_command(
     with cli_errors(debug):
         from covextract.cli.summary import print_summary
         from covextract.demo import lay_out_demo
-        from covextract.pipeline import run
+        from covextract.run import run
 
         folder = lay_out_demo(out)
         typer.echo(f"demo scenario (invented data) laid out in {folder}")
-        result = run(folder / "recipe.yaml", write=True, progress=True)
+        result = run(folder / "recipe.yaml", write=True, progress=None)
         print_summary(result)
         if spi:
             from covextract.demo.spi import SPI_RECIPE, write_spi_series
@@ -39,7 +39,7 @@ def demo_command(
                 "\nSPI example: 372 invented monthly rainfall rasters generated in "
                 f"{folder / 'spi_rain'}; running recipe_spi.yaml"
             )
-            spi_result = run(folder / "recipe_spi.yaml", write=True, progress=False)
+            spi_result = run(folder / "recipe_spi.yaml", write=True, progress=None)
             cats = spi_result.table["spi_mean_spi3_mean_1m_lag1_category"].value_counts()
             typer.echo(
                 "SPI-3 of the month before each visit, villages per WMO category: "

@@ -32,13 +32,13 @@ def refresh_command(
     """
     code = 0
     with cli_errors(debug):
-        from covextract.ops.lock import EXIT_CODES, LockedError
+        from covextract.state.lock import EXIT_CODES, LockedError
         from covextract.ops.refresh import refresh
 
         try:
             result = refresh(
                 recipe,
-                progress=not quiet,
+                progress=None,
                 threads=threads,
                 scheduler=scheduler,
                 recompute=recompute,

@@ -26,8 +26,8 @@ def run_command(
     """Compute the covariates of RECIPE and write the table, codebook and manifest."""
     with cli_errors(debug):
         from covextract.cli.summary import print_summary
-        from covextract.pipeline import run
+        from covextract.run import run
 
-        result = run(recipe, write=True, progress=not quiet, threads=threads, scheduler=scheduler)
+        result = run(recipe, write=True, progress=None, threads=threads, scheduler=scheduler)
         if not quiet:
             print_summary(result)

@@ -201,7 +201,7 @@ def zonal(
 
     qa = []
     on_grid = weights.units_on_grid()
-    has_geom, touches_grid = _geometry_flags(geoms, grid, weights.n_units)
+    has_geom, touches_grid = geometry_flags(geoms, grid, weights.n_units)
     for i in range(weights.n_units):
         codes = []
         if not has_geom[i]:
@@ -243,7 +243,7 @@ def _offgrid_weight(weights, cov_on, area_all, weighting: bool) -> np.ndarray:
     return weights.offgrid * mean_area
 
 
-def _geometry_flags(geoms, grid, n: int):
+def geometry_flags(geoms, grid, n: int):
     """Per unit: has a usable geometry; its bounding box meets the grid."""
     import shapely
 

@@ -501,3 +501,33 @@ _GEOM_TYPE_NAMES = {
     6: "MultiPolygon",
     7: "GeometryCollection",
 }
+
+
+def parse_record_dates(frame: pd.DataFrame, column: str, date_format: str | None):
+    """Dates of the study records (NaT where missing or unreadable).
+
+    Without ``date_format`` dates must be ISO 8601 (``2021-05-17``); a column
+    that mixes ISO dates with other spellings is an error, since guessing
+    day-first or month-first would silently move visits by months.
+    """
+    raw = frame[column]
+    text = raw.astype(str).str.strip()
+    empty = raw.isna() | text.isin(["", "NA", "nan", "NaT", "None"])
+    if date_format:
+        parsed = pd.to_datetime(text.where(~empty), format=date_format, errors="coerce")
+        return parsed
+    parsed = pd.to_datetime(text.where(~empty), format="ISO8601", errors="coerce")
+    bad = text[~empty & parsed.isna()]
+    if len(bad) and (~empty & parsed.notna()).any():
+        rows = ", ".join(f"row {i + 1} ({v!r})" for i, v in bad.iloc[:5].items())
+        raise TableError(
+            f"study.date: column {column!r} mixes date formats: most cells are YYYY-MM-DD but "
+            f"{rows}{' and more' if len(bad) > 5 else ''} are not. State the format with "
+            "study: {date_format: '%d/%m/%Y'} (strftime codes), or fix those cells."
+        )
+    if len(bad) and not (~empty & parsed.notna()).any():
+        raise TableError(
+            f"study.date: column {column!r} holds no YYYY-MM-DD dates (first: {bad.iloc[0]!r}). "
+            "State the format with study: {date_format: '%d/%m/%Y'} (strftime codes)."
+        )
+    return parsed

@@ -2,7 +2,7 @@
 
 The scheduled command is :data:`VERB`: ``refresh`` computes only the periods
 that are new or whose inputs changed (:mod:`covextract.ops.refresh`) and
-exits with a documented status (:data:`covextract.ops.lock.EXIT_CODES`).
+exits with a documented status (:data:`covextract.state.lock.EXIT_CODES`).
 
 Nothing here installs anything except :func:`install_crontab`, which the
 command calls only after the user has seen the line and confirmed.
@@ -78,7 +78,7 @@ def default_log(recipe: str | os.PathLike) -> Path:
     from covextract.errors import CovextractError
 
     try:
-        from covextract.pipeline import _load, _output_paths
+        from covextract.run.plan import load as _load, output_paths as _output_paths
 
         return Path(_output_paths(_load(recipe))["state"]).resolve() / LOG_NAME
     except CovextractError:

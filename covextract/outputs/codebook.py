@@ -12,14 +12,16 @@ from pathlib import Path
 
 from covextract.io.writers import atomic_write_text
 
-__all__ = ["CODEBOOK_FIELDS", "STAT_DEFINITIONS", "CAUTIONS", "write_codebook"]
+__all__ = ["CODEBOOK_FIELDS", "CAUTIONS", "write_codebook", "codebook_markdown", "methods_paragraph"]
 
 CODEBOOK_FIELDS = [
     "column",
+    "output",
     "layer",
     "statistic",
     "definition",
     "unit_of_measure",
+    "method",
     "pixel_rule",
     "area_weighting",
     "unit_shape",
@@ -32,60 +34,6 @@ CODEBOOK_FIELDS = [
     "qa_codes",
 ]
 
-STAT_DEFINITIONS = {
-    "count": "number of pixels with coverage >= 1e-10 and a valid value",
-    "valid_share": (
-        "share of the unit's (weighted) area with valid pixels; the part of the unit "
-        "outside the raster counts as invalid"
-    ),
-    "sum": "sum over pixels of coverage x value (right for per-pixel counts)",
-    "density_total": (
-        "sum over pixels of coverage x value x pixel ground area in km2 (right for "
-        "densities such as people per km2 or radiance)"
-    ),
-    "area_km2": "area of the unit on the raster grid, km2 (coverage x true pixel area)",
-    "mean": (
-        "weighted mean of valid pixels (weight = coverage x true pixel area when area "
-        "weighting is on)"
-    ),
-    "std": "weighted standard deviation of valid pixels, ddof = 0 (weights are areas)",
-    "min": "smallest valid pixel value among covered pixels",
-    "max": "largest valid pixel value among covered pixels",
-    "median": "weighted median (weighted generalisation of numpy's linear percentile)",
-    "percentile": "weighted {q}th percentile (weighted generalisation of numpy's linear method)",
-    "area_above": (
-        "area, km2, of valid pixels with value > {threshold} (coverage x true pixel area)"
-    ),
-    "share_above": "share of the valid (weighted) area with value > {threshold}",
-    "relchange": (
-        "relative change: the unit's mean per-pixel change divided by its mean earlier value "
-        "on the same pixels (missing where that mean is 0)"
-    ),
-    "value": "value of the raster at the point ({method}); missing when that pixel is nodata",
-}
-
-CATEGORICAL_DEFINITIONS = {
-    "share": "share of the unit's valid area in class or group {label} (nodata excluded)",
-    "dominant": "class with the largest share of the valid area; a tie goes to the lowest code",
-    "classes_present": "number of classes with a positive share ('other' counts as one)",
-    "shannon": "Shannon diversity -sum p ln p over the class shares (Shannon 1948)",
-    "valid_share": "share of the unit's area with a valid class code",
-    "transition": (
-        "share of the unit's area that was {pair} between layer {since} and this layer "
-        "('any' = any class other than the target), on pixels valid in both"
-    ),
-    "net_change": "share of class {label} in this layer minus its share in layer {since}, "
-    "on pixels valid in both",
-}
-
-RULE_TEXT = {
-    "overlap": "overlap: each pixel weighted by the exact fraction of its area inside the unit",
-    "center": "center: pixels whose centre lies inside the unit, weight 1",
-    "touched": "touched: every pixel the unit touches, weight 1",
-    "nearest": "nearest: the pixel containing the point",
-    "bilinear": "bilinear: interpolated between the four nearest pixel centres",
-}
-
 CAUTIONS = [
     "Covariates describe the environment of a unit; in a model they show association, not cause.",
     "Values are aggregated over an area: they do not describe any individual living there.",
@@ -97,24 +45,26 @@ CAUTIONS = [
 ]
 
 
-def write_codebook(rows: list[dict], csv_path, *, markdown_path=None, title: str = "Codebook"):
-    """Write the codebook as CSV and, when ``markdown_path`` is given, Markdown.
+def write_codebook(result, csv_path, *, markdown_path=None, title: str | None = None):
+    """Write the codebook of a run as CSV and, when ``markdown_path`` is given, Markdown.
 
     Parameters
     ----------
-    rows : list of dict
-        One dict per column with the keys of :data:`CODEBOOK_FIELDS`.
+    result : RunResult
+        Its ``codebook`` rows (keys of :data:`CODEBOOK_FIELDS`), table, panel
+        and layers.
     csv_path, markdown_path : path
         Destinations (written atomically).
     """
     buf = io.StringIO()
     writer = csv.DictWriter(buf, fieldnames=CODEBOOK_FIELDS, lineterminator="\n")
     writer.writeheader()
-    for row in rows:
+    for row in result.codebook:
         writer.writerow({k: row.get(k, "") for k in CODEBOOK_FIELDS})
     atomic_write_text(csv_path, buf.getvalue())
     if markdown_path is not None:
-        atomic_write_text(markdown_path, codebook_markdown(rows, title=title))
+        title = title or f"Codebook for {Path(csv_path).name.replace('_codebook.csv', '')}"
+        atomic_write_text(markdown_path, codebook_markdown(result, title=title))
     return Path(csv_path)
 
 
@@ -122,17 +72,133 @@ def _md_cell(text) -> str:
     return str(text).replace("|", "\\|").replace("\n", " ")
 
 
-def codebook_markdown(rows: list[dict], *, title: str = "Codebook") -> str:
-    """The codebook as a Markdown document."""
+#: Published methods, cited in the methods paragraph when a run uses them.
+REFERENCES = {
+    "buffer": "Karney CFF (2013). Algorithms for geodesics. J. Geodesy 87:43-55.",
+    "ndvi": "Rouse JW et al. (1974). Monitoring vegetation systems in the Great Plains with ERTS.",
+    "evi": "Huete A et al. (2002). Remote Sensing of Environment 83:195-213.",
+    "spi": "McKee TB, Doesken NJ, Kleist J (1993). The relationship of drought frequency and "
+    "duration to time scales. 8th Conference on Applied Climatology; World Meteorological "
+    "Organization (2012). Standardized Precipitation Index User Guide, WMO-No. 1090.",
+    "sen": "Sen PK (1968). Estimates of the regression coefficient based on Kendall's tau. "
+    "JASA 63:1379-1389.",
+    "shannon": "Shannon CE (1948). A mathematical theory of communication. Bell System "
+    "Technical Journal 27:379-423.",
+    "allocated": "Tobler WR (1979). Smooth pycnophylactic interpolation for geographical "
+    "regions. JASA 74:519-530 (the volume-preserving property).",
+    "predicted": "Duan N (1983). Smearing estimate: a nonparametric retransformation method. "
+    "JASA 78:605-610.",
+}
+
+
+def methods_paragraph(result) -> tuple[str, list[str]]:
+    """A methods paragraph a study can adapt, and the references it cites."""
+    from covextract import __version__
+
+    rows = [r for r in result.codebook if r.get("statistic") != "qa"]
+    layers = sorted({r["layer"] for r in rows})
+    shapes = sorted({r["unit_shape"] for r in rows})
+    rules = sorted({r["pixel_rule"].split(":")[0] for r in rows})
+    weighting = sorted({r["area_weighting"] for r in rows})
+    stats = {r["statistic"] for r in rows}
+    methods = " ".join(sorted({r["method"] for r in rows if r.get("method")}))
+    refs = []
+    text = (
+        f"Environmental covariates were extracted with covextract {__version__} from "
+        f"{len(layers)} raster layer{'s' if len(layers) != 1 else ''} ({', '.join(layers)}) "
+        f"for {result.summary.get('units', '?')} study units ({'; '.join(shapes)}). Rasters were "
+        "not resampled: each unit was projected to the raster's grid, and pixels were counted "
+        f"by the rule {' / '.join(rules)} (overlap: the exact fraction of each pixel inside "
+        "the unit; center: pixels whose centre lies inside; touched: every pixel the unit "
+        "touches). Area weighting by each pixel's true ground area on the WGS84 ellipsoid: "
+        f"{'; '.join(weighting)}. Nodata and declared fill values were excluded before any "
+        "statistic; the share of each unit with valid pixels is reported."
+    )
+    if any("buffer" in s for s in shapes):
+        text += " Buffers are geodesic circles drawn on the ellipsoid."
+        refs.append(REFERENCES["buffer"])
+    if methods:
+        text += f" Details by covariate: {methods}"
+    for key in ("ndvi", "evi"):
+        if any(f"'{key}'" in r["nodata_handling"] for r in rows):
+            refs.append(REFERENCES[key])
+    if stats & {"spi", "category"}:
+        refs.append(REFERENCES["spi"])
+    if stats & {"sen", "ols", "p"}:
+        refs.append(REFERENCES["sen"])
+    for key in ("shannon", "allocated", "predicted"):
+        if key in stats:
+            refs.append(REFERENCES[key])
+    return text, refs
+
+
+def _column_summary(result, row) -> str:
+    """Missing count and min / median / max (numbers) or counts of each value (text)."""
+    import numpy as np
+    import pandas as pd
+
+    name = row["column"]
+    if row.get("output") == "long panel":
+        panel = result.panel
+        if panel is None or panel.empty:
+            return "no rows"
+        values = panel.loc[panel["column"] == name, "value"]
+    elif name in result.table.columns:
+        values = result.table[name]
+    else:
+        return "not written (removed by output.drop)"
+    numeric = pd.to_numeric(values, errors="coerce")
+    text_cells = values.notna() & numeric.isna() & (values.astype(str) != "")
+    if text_cells.any() or row.get("statistic") in ("qa", "dominant", "category"):
+        cells = values.fillna("").astype(str)
+        missing = int((cells == "").sum())
+        counts = cells[cells != ""].value_counts().sort_index()
+        parts = [f"{k}: {v}" for k, v in counts.items()][:12]
+        more = f", ... ({len(counts) - 12} more values)" if len(counts) > 12 else ""
+        return f"{missing} empty; " + (", ".join(parts) + more if parts else "no values")
+    finite = numeric[np.isfinite(numeric)]
+    missing = int(len(numeric) - len(finite))
+    if finite.empty:
+        return f"{missing} missing of {len(numeric)}; no values"
+    return (
+        f"{missing} missing of {len(numeric)}; min {finite.min():.6g}, median "
+        f"{finite.median():.6g}, max {finite.max():.6g}"
+    )
+
+
+def codebook_markdown(result, *, title: str = "Codebook") -> str:
+    """The codebook as a Markdown document: cautions, layers, methods, then every column."""
     lines = [f"# {title}", "", "## Cautions", ""]
     lines += [f"- {c}" for c in CAUTIONS]
-    lines += ["", "## Columns", ""]
-    for row in rows:
+    lines += ["", "## Layers", ""]
+    by_layer: dict = {}
+    for row in result.codebook:
+        by_layer.setdefault(row["layer"], row)
+    for name, row in by_layer.items():
+        meta = result.layers.get(name, {})
+        cols = [r["column"] for r in result.codebook if r["layer"] == name]
+        parts = [f"**{name}**: {row['source_file']}"]
+        if meta.get("unit"):
+            parts.append(f"unit {meta['unit']}")
+        if meta.get("crs"):
+            parts.append(f"grid {meta['width']} x {meta['height']} pixels in {meta['crs']}")
+        for key in ("source", "version", "citation", "license"):
+            if meta.get(key):
+                parts.append(f"{key} {meta[key]}")
+        parts.append(f"{len(cols)} column{'s' if len(cols) != 1 else ''}")
+        lines.append("- " + "; ".join(_md_cell(p) for p in parts))
+    text, refs = methods_paragraph(result)
+    lines += ["", "## Methods (a paragraph to adapt)", "", text, ""]
+    if refs:
+        lines += ["References:", ""] + [f"- {r}" for r in refs] + [""]
+    lines += ["## Columns", ""]
+    for row in result.codebook:
         lines.append(f"### `{row['column']}`")
         lines.append("")
         for key in CODEBOOK_FIELDS[1:]:
             val = row.get(key, "")
             if val not in ("", None):
                 lines.append(f"- **{key.replace('_', ' ')}**: {_md_cell(val)}")
+        lines.append(f"- **values in this run**: {_column_summary(result, row)}")
         lines.append("")
     return "\n".join(lines) + "\n"

@@ -6,12 +6,12 @@ of outputs is complete and belongs together.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import platform
 from datetime import datetime, timezone
 from pathlib import Path
 
+from covextract.io.paths import file_sha256, inside, shareable_path
 from covextract.io.writers import atomic_write_text
 
 __all__ = ["file_sha256", "package_versions", "write_manifest", "verify_manifest"]
@@ -30,20 +30,6 @@ _PACKAGES = (
     "pydantic",
     "dask",
 )
-
-
-def file_sha256(path, *, chunk: int = 1 << 20) -> str:
-    """SHA-256 of a file's bytes (for a folder: of its files, sorted by name)."""
-    path = Path(path)
-    h = hashlib.sha256()
-    files = sorted(p for p in path.rglob("*") if p.is_file()) if path.is_dir() else [path]
-    for f in files:
-        if path.is_dir():
-            h.update(str(f.relative_to(path)).encode())
-        with open(f, "rb") as fh:
-            while block := fh.read(chunk):
-                h.update(block)
-    return h.hexdigest()
 
 
 def package_versions() -> dict:
@@ -84,37 +70,60 @@ def write_manifest(
     outputs: list,
     layers: dict,
     started: datetime,
+    base_dir,
     extra: dict | None = None,
 ):
     """Write the manifest JSON (call after every other output is in place).
+
+    Paths are written relative to ``base_dir`` (the recipe's folder); a file
+    outside it is named by its file name and content hash, so the manifest
+    can be shared without revealing local folder names.
 
     Parameters
     ----------
     inputs : list of dict
         ``{"role", "path"}`` for every input file; fingerprints are added here
         unless an item already carries its ``"sha256"``.
-    outputs : list of path
+    outputs : list of (role, path)
         Files written by the run; their fingerprints are recorded.
     layers : dict
         ``layer name -> {"crs": ..., "grid": ...}``.
+    base_dir : path
+        The recipe's folder.
     """
     finished = datetime.now(timezone.utc)
-    doc = {
-        "manifest_version": 1,
-        "recipe": {
-            "file": str(recipe_file) if recipe_file else None,
-            "fingerprint": recipe_fingerprint,
-        },
-        "inputs": [
+    entries = []
+    for item in inputs:
+        digest = item.get("sha256") or file_sha256(item["path"])
+        entries.append(
             {
                 **item,
-                "path": str(item["path"]),
-                "sha256": item.get("sha256") or file_sha256(item["path"]),
+                "path": shareable_path(item["path"], base_dir, sha256=digest),
+                "outside_recipe_folder": not inside(item["path"], base_dir),
+                "sha256": digest,
                 "bytes": Path(item["path"]).stat().st_size,
             }
-            for item in inputs
-        ],
-        "outputs": [{"path": str(p), "sha256": file_sha256(p)} for p in outputs],
+        )
+    written = []
+    for role, p in outputs:
+        digest = file_sha256(p)
+        written.append(
+            {
+                "role": role,
+                "path": shareable_path(p, base_dir, sha256=digest),
+                "outside_recipe_folder": not inside(p, base_dir),
+                "sha256": digest,
+            }
+        )
+    doc = {
+        "manifest_version": 2,
+        "paths": "relative to the recipe's folder; files outside it by name and content hash",
+        "recipe": {
+            "file": shareable_path(recipe_file, base_dir) if recipe_file else None,
+            "fingerprint": recipe_fingerprint,
+        },
+        "inputs": entries,
+        "outputs": written,
         "layers": layers,
         "versions": package_versions(),
         "run": {
@@ -129,14 +138,22 @@ def write_manifest(
     return Path(path)
 
 
-def verify_manifest(path) -> list[str]:
-    """Problems found when comparing a manifest with the files on disk (empty: all match)."""
+def verify_manifest(path, *, base_dir) -> list[str]:
+    """Problems found when comparing a manifest with the files on disk (empty: all match).
+
+    ``base_dir`` is the recipe's folder, which the manifest's paths are
+    relative to. Files recorded outside it (by name and hash) cannot be
+    located and are reported as such.
+    """
     doc = json.loads(Path(path).read_text())
     problems = []
     for item in doc.get("inputs", []) + doc.get("outputs", []):
-        p = Path(item["path"])
+        if item.get("outside_recipe_folder"):
+            problems.append(f"{item['path']} lies outside the recipe folder; not checked")
+            continue
+        p = Path(base_dir) / item["path"]
         if not p.exists():
-            problems.append(f"{p} is missing")
+            problems.append(f"{item['path']} is missing")
         elif file_sha256(p) != item["sha256"]:
-            problems.append(f"{p} has changed since the run")
+            problems.append(f"{item['path']} has changed since the run")
     return problems

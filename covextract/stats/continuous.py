@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 
 from covextract.engine.reduce import Accumulator
-from covextract.stats.names import StatName
+from covextract.stats.registry import Statistic
 
 __all__ = ["finalize", "weighted_percentiles"]
 
@@ -83,14 +83,14 @@ def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
     return out
 
 
-def finalize(acc: Accumulator, stats: list[StatName], *, offgrid_w: np.ndarray, threshold=None):
+def finalize(acc: Accumulator, stats: list[Statistic], *, offgrid_w: np.ndarray, threshold=None):
     """Turn an accumulator into one array per requested statistic.
 
     Parameters
     ----------
     acc : Accumulator
         Merged sums of every block.
-    stats : list of StatName
+    stats : list of Statistic
         Requested statistics.
     offgrid_w : ndarray
         Per unit, the statistical weight of the part off the grid (counts as
@@ -103,10 +103,10 @@ def finalize(acc: Accumulator, stats: list[StatName], *, offgrid_w: np.ndarray, 
     dict
         ``name -> ndarray`` (float64 with NaN for missing; ``count`` int64).
     """
+    from covextract.stats.registry import FinishContext
+
     n = acc.n_units
     has = acc.count > 0
-    nan = np.full(n, np.nan)
-    out = {}
     denom_all = acc.w_all + offgrid_w
     with np.errstate(invalid="ignore", divide="ignore"):
         valid_share = np.where(denom_all > 0, acc.w_base / denom_all, 0.0)
@@ -118,37 +118,13 @@ def finalize(acc: Accumulator, stats: list[StatName], *, offgrid_w: np.ndarray, 
         table = weighted_percentiles(u, v, w, n, [s.q for s in pct])
         for s, row in zip(pct, table, strict=True):
             pct_values[s.name] = row
+    out = {}
     for s in stats:
-        k = s.kind
-        if k == "count":
-            out[s.name] = acc.count.copy()
-        elif k == "valid_share":
-            out[s.name] = valid_share
-        elif k == "sum":
-            out[s.name] = np.where(has, acc.csum, nan)
-        elif k == "density_total":
-            out[s.name] = np.where(has, acc.dens, nan)
-        elif k == "area_km2":
-            out[s.name] = np.where(has, acc.area_all, nan)
-        elif k == "mean":
-            out[s.name] = np.where(has, acc.mean, nan)
-        elif k == "std":
-            with np.errstate(invalid="ignore", divide="ignore"):
-                var = np.where(acc.w > 0, acc.m2 / acc.w, np.nan)
-            out[s.name] = np.where(has, np.sqrt(np.maximum(var, 0.0)), nan)
-        elif k == "min":
-            out[s.name] = np.where(has, acc.vmin, nan)
-        elif k == "max":
-            out[s.name] = np.where(has, acc.vmax, nan)
-        elif k in ("median", "percentile"):
-            out[s.name] = pct_values[s.name]
-        elif k == "area_above":
-            out[s.name] = np.where(has, acc.above_area[threshold], nan)
-        elif k == "share_above":
-            with np.errstate(invalid="ignore", divide="ignore"):
-                out[s.name] = np.where(has, acc.above_w[threshold] / acc.w, nan)
-        elif k == "value":
-            out[s.name] = np.where(has, acc.mean, nan)
-        else:  # pragma: no cover - names are validated by parse_stat
-            raise ValueError(f"unknown statistic {s.name!r}")
+        ctx = FinishContext(
+            has=has,
+            valid_share=valid_share,
+            threshold=threshold,
+            percentiles={**pct_values, None: pct_values.get(s.name)},
+        )
+        out[s.name] = s.finish(acc, ctx)
     return out

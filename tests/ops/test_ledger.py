@@ -17,7 +17,7 @@ import pytest
 
 from covextract.errors import CovextractError, OutputError
 from covextract.io.series import Period
-from covextract.ops.ledger import (
+from covextract.state.ledger import (
     SCHEMA_VERSION,
     Ledger,
     LedgerCorruptError,

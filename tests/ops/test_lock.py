@@ -17,7 +17,7 @@ from pathlib import Path
 import pytest
 
 from covextract.errors import CovextractError, CovextractWarning
-from covextract.ops.lock import (
+from covextract.state.lock import (
     EXIT_CODES,
     LockedError,
     NetworkFileSystemWarning,
@@ -30,7 +30,7 @@ REPO = Path(__file__).resolve().parents[2]
 # A second process tries the lock; exit status tells the test what happened.
 TRY_LOCK = """
 import sys
-from covextract.ops.lock import LockedError, StateLock
+from covextract.state.lock import LockedError, StateLock
 try:
     with StateLock(sys.argv[1], mounts_file=sys.argv[2]):
         print("acquired", flush=True)
@@ -42,7 +42,7 @@ except LockedError as exc:
 
 HOLD_LOCK = """
 import sys, time
-from covextract.ops.lock import StateLock
+from covextract.state.lock import StateLock
 lock = StateLock(sys.argv[1], mounts_file=sys.argv[2])
 lock.acquire()
 print("locked", flush=True)

@@ -18,9 +18,9 @@ import numpy as np
 import pytest
 import rasterio
 
-from covextract.ops.ledger import LEDGER_NAME, Ledger
-from covextract.ops.lock import EXIT_CODES
-from covextract.ops.pieces import PIECES_DIR, PieceWarning
+from covextract.state.ledger import LEDGER_NAME, Ledger
+from covextract.state.lock import EXIT_CODES
+from covextract.state.pieces import PIECES_DIR, PieceWarning
 from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
 from covextract.pipeline import run
 

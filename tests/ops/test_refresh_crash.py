@@ -24,8 +24,8 @@ from typer.testing import CliRunner
 from covextract.cli.app import app
 from covextract.crashpoints import CRASH_ENV, HOLD_ENV
 from covextract.demo import lay_out_demo
-from covextract.ops.ledger import Ledger
-from covextract.ops.lock import EXIT_CODES, LockedError
+from covextract.state.ledger import Ledger
+from covextract.state.lock import EXIT_CODES, LockedError
 from covextract.ops.refresh import refresh
 from covextract.pipeline import run
 

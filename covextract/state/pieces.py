@@ -53,7 +53,7 @@ __all__ = [
 PIECES_DIR = "pieces"
 """Folder of the pieces inside the state folder."""
 
-PIECE_FORMAT = 1
+PIECE_FORMAT = 2
 """Layout version written into every piece's metadata."""
 
 STATIC = "static"
@@ -198,16 +198,15 @@ def write_static_piece(
     """Write a covariate without periods: its columns, QA codes, valid shares and fit."""
     frame = pd.DataFrame({"unit_id": [str(u) for u in ids]})
     dtypes = {}
-    for name, array in outcome.columns.items():
+    for name, array in outcome.values.items():
         arr = np.asarray(array)
         dtypes[name] = str(arr.dtype)
         frame[f"column:{name}"] = arr
-    frame["qa"] = _qa_text(outcome.zonal_qa)
+    frame["qa"] = _qa_text(outcome.qa)
     frame["valid_share"] = np.asarray(outcome.valid_share, dtype=np.float64)
     extra = {
         "dtypes": dtypes,
-        "fit": outcome.fit,
-        "dark_zones": outcome.dark_zones,
+        "learnt": outcome.learnt,
         "unknown_codes": [float(c) for c in outcome.unknown_codes],
     }
     path = piece_path(state_folder, covariate_fp, STATIC)
@@ -216,8 +215,8 @@ def write_static_piece(
 
 
 def read_static_piece(path, *, covariate_fp: str, ids):
-    """The :class:`~covextract.pipeline.CovariateOutcome` stored in a static piece."""
-    from covextract.pipeline import CovariateOutcome
+    """The :class:`~covextract.covariates.Outcome` stored in a static piece."""
+    from covextract.covariates.base import Outcome
 
     path = Path(path)
     frame, meta = _read(path)
@@ -232,13 +231,12 @@ def read_static_piece(path, *, covariate_fp: str, ids):
             columns[name] = np.array([np.nan if v is None else v for v in col], dtype=object)
         else:
             columns[name] = col.to_numpy(dtype=np.dtype(dtype))
-    return CovariateOutcome(
-        columns=columns,
-        zonal_qa=_qa_lists(frame["qa"]),
+    return Outcome(
+        values=columns,
+        qa=_qa_lists(frame["qa"]),
         valid_share=frame["valid_share"].to_numpy(dtype=np.float64),
-        fit=meta.get("fit"),
-        dark_zones=meta.get("dark_zones"),
         unknown_codes=list(meta.get("unknown_codes") or []),
+        learnt=dict(meta.get("learnt") or {}),
     )
 
 

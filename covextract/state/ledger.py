@@ -52,8 +52,13 @@ __all__ = [
 LEDGER_NAME = "ledger.sqlite"
 """File name of the ledger inside the state folder."""
 
-SCHEMA_VERSION = 2
-"""Layout version stored in ``PRAGMA user_version``; bump it when the tables change."""
+SCHEMA_VERSION = 3
+"""Layout version stored in ``PRAGMA user_version``; bump it when the tables or pieces change.
+
+Version 3 (covextract 0.2): covariate fingerprints and pieces of the redesigned
+covariate kinds. A state folder of version 2 is refused with a message saying
+how to move on; its pieces are never reused under the new column names.
+"""
 
 _SCHEMA = """
 CREATE TABLE computed (
@@ -285,10 +290,19 @@ class Ledger:
 
     def _check_schema(self, version: int) -> None:
         if version != SCHEMA_VERSION:
+            folder = self.path.parent
+            older = version < SCHEMA_VERSION
             raise LedgerVersionError(
-                f"the ledger {self.path} has schema version {version}, this covextract reads "
-                f"version {SCHEMA_VERSION}; use the covextract that wrote it, or move the file "
-                "away and let the next refresh rebuild it from the outputs",
+                f"the state folder {folder} was written by "
+                + ("an earlier" if older else "a newer")
+                + f" covextract (ledger schema {version}; this one reads schema "
+                f"{SCHEMA_VERSION}"
+                + (", and names some columns differently" if older else "")
+                + "). Nothing was changed. To move on, rename that folder (for example to "
+                f"{folder.name}.v{version}) and run the recipe again: every piece is computed "
+                "anew and the outputs are replaced only when the new ones are complete"
+                + ("" if older else "; or use the covextract that wrote it")
+                + ".",
                 path=self.path,
             )
         for table, expected in _TABLES.items():
@@ -447,7 +461,7 @@ class Ledger:
         run_id : int
             As returned by :meth:`start_run`.
         result : str
-            A key of :data:`covextract.ops.lock.EXIT_CODES` (``"success"``...).
+            A key of :data:`covextract.state.lock.EXIT_CODES` (``"success"``...).
         summary : object
             Stored as JSON (sorted keys, ``str`` for dates and paths).
 

@@ -1,0 +1,134 @@
+"""Codebook rows of a covariate: what every column holds, its unit, method and sources.
+
+The texts of statistics come from the registry; a kind adds its method text
+(:meth:`~covextract.covariates.base.Covariate.method_text`) and QA codes.
+"""
+
+from __future__ import annotations
+
+__all__ = ["codebook_rows", "source_text", "RULE_TEXT"]
+
+RULE_TEXT = {
+    "overlap": "overlap: each pixel weighted by the exact fraction of its area inside the unit",
+    "center": "center: pixels whose centre lies inside the unit, weight 1",
+    "touched": "touched: every pixel the unit touches, weight 1",
+    "nearest": "nearest: the pixel containing the point",
+    "bilinear": "bilinear: interpolated between the four nearest pixel centres",
+}
+
+
+def _stored_text(src) -> str:
+    nd = ", ".join(repr(v) for v in dict.fromkeys(src.nodata)) or "none declared"
+    return (
+        f"stored values {nd}, NaN"
+        + (f" and values outside {list(src.valid_range)}" if src.valid_range else "")
+        + " are missing; physical value = stored x "
+        + f"{src.scale!r} + {src.offset!r}, applied before any statistic"
+        + (
+            f"; values above {src.ceiling!r} are set to {src.ceiling!r}"
+            if getattr(src, "ceiling", None) is not None
+            else ""
+        )
+    )
+
+
+def nodata_text(src, layer) -> str:
+    """How missing values are handled, for the codebook."""
+    if not layer.bands:
+        return _stored_text(src)
+    inner = getattr(src, "source", src)
+    parts = [f"band {name}: {_stored_text(b)}" for name, b in inner.bands.items()]
+    text = (
+        f"index {layer.index or layer.expression!r} computed per pixel after each band's scale "
+        "and fill; a pixel is missing where any band is missing or the formula is undefined "
+        "(division by zero gives nodata, not inf). " + "; ".join(parts)
+    )
+    if layer.valid_range:
+        text += f"; index values outside {list(layer.valid_range)} are missing"
+    if layer.ceiling is not None:
+        text += f"; index values above {layer.ceiling!r} are set to it"
+    return text
+
+
+def source_text(plan, name) -> str:
+    """What a layer reads, with paths relative to the recipe's folder."""
+    from covextract.io.paths import shareable_path
+
+    recipe = plan.recipe
+    layer = recipe.layers[name]
+    base = recipe.base_dir
+    series = plan.series.get(name)
+    if series is not None and series.periods:
+        first, last = series.periods[0].label, series.periods[-1].label
+        n, gaps = len(series.periods), len(series.gaps)
+        gap_text = f", {gaps} gap(s)" if gaps else ", no gaps"
+        if layer.variable is not None:
+            return (
+                f"NetCDF cube {shareable_path(recipe.resolve(layer.file), base)}, variable "
+                f"{layer.variable}, {n} periods ({series.step.text}) {first} to {last}{gap_text}"
+            )
+        return f"{n} files {layer.file} ({series.step.text}), {first} to {last}{gap_text}"
+    if layer.bands:
+        parts = [
+            f"{b} = {shareable_path(recipe.resolve(spec.file), base)} band {spec.band}"
+            for b, spec in layer.bands.items()
+        ]
+        return f"band math {layer.index or layer.expression!r} of " + ", ".join(parts)
+    return f"{shareable_path(recipe.resolve(layer.file), base)}, band {layer.band}"
+
+
+def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
+    """One codebook row per column of ``cov`` (table and panel), then its QA column."""
+    from covextract.engine.zonal import QA_CODES
+    from covextract.units.build import QA_CODES as UNIT_QA_CODES
+
+    recipe = plan.recipe
+    layer = cov.layer
+    src = plan.sources[cov.layer_name]
+    units = plan.unit_sets[cov.unit_key]
+    weighting = (
+        "on (grid pixel area varies)"
+        if cov.area_weighting == "auto" and src.grid.area_varies
+        else ("off" if cov.area_weighting == "off" else "auto: not needed, pixel area constant")
+    )
+    method = "; ".join(t for t in (cov.method_text(plan), cov.describe_learnt(learnt)) if t)
+    base = {
+        "layer": cov.layer_name,
+        "pixel_rule": RULE_TEXT.get(cov.rule, cov.rule),
+        "area_weighting": weighting,
+        "unit_shape": units.description,
+        "nodata_handling": nodata_text(src, layer),
+        "method": method,
+        "source_file": source_text(plan, cov.layer_name),
+        "source": layer.source or "",
+        "version": layer.version or "",
+        "citation": layer.citation or "",
+        "license": layer.license or "",
+    }
+    rows = []
+    for col in cov.columns:
+        rows.append(
+            {
+                **base,
+                "column": col.name,
+                "output": "long panel" if col.where == "panel" else "table",
+                "statistic": col.statistic.name,
+                "definition": col.definition,
+                "unit_of_measure": col.unit,
+                "qa_codes": "",
+            }
+        )
+    if cov.qa_column:
+        codes = {**UNIT_QA_CODES, **QA_CODES, **cov.qa_codes()}
+        rows.append(
+            {
+                **base,
+                "column": cov.qa_column,
+                "output": "table",
+                "statistic": "qa",
+                "definition": "reason codes separated by ';', empty when all is well",
+                "unit_of_measure": "none (text codes)",
+                "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
+            }
+        )
+    return rows
