@@ -80,6 +80,7 @@ class Plan:
     output_paths: dict
     problems: list = field(default_factory=list)
     series: dict = field(default_factory=dict)
+    layers: dict = field(default_factory=dict)
 
 
 @dataclass
@@ -261,6 +262,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     # layers
     sources = {}
     series: dict = {}
+    layer_sources: dict = {}
     used_layers = {c.layer for c in recipe.covariates}
     used_layers |= {c.since for c in recipe.covariates if getattr(c, "since", None)}
     used_layers |= {c.weight_by for c in recipe.covariates if getattr(c, "weight_by", None)}
@@ -268,13 +270,15 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         if name not in used_layers:
             continue
         try:
-            if getattr(layer, "is_series", False):
-                from covextract.timed import open_series
+            from covextract.sources.registry import open_source
 
-                series[name] = open_series(recipe, name, layer)
-                sources[name] = series[name].source(series[name].periods[0])
+            opened = open_source(name, layer, resolve=recipe.resolve, base_dir=recipe.base_dir)
+            layer_sources[name] = opened
+            if opened.is_series:
+                series[name] = opened.source
+                sources[name] = opened.source.source(opened.source.periods[0])
             else:
-                sources[name] = _open_source(recipe, name, layer)
+                sources[name] = opened.source
         except CovextractError as exc:
             problem(exc, f"layers.{name}.{'bands' if layer.bands else 'file'}")
 
@@ -389,7 +393,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     for cp in plans:
         wb = getattr(cp.spec, "weight_by", None)
         if wb and cp.layer_name in sources and wb in sources:
-            from covextract.derive.bands import WeightedSource
+            from covextract.sources.weighted import WeightedSource
 
             try:
                 WeightedSource(sources[cp.layer_name], sources[wb])
@@ -414,7 +418,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 f"{src.grid.crs.to_string()}); check the layer file and the study's CRS",
                 f"covariates[{cp.index}].layer",
             )
-    return Plan(recipe, table, unit_sets, sources, plans, paths, problems, series)
+    return Plan(recipe, table, unit_sets, sources, plans, paths, problems, series, layer_sources)
 
 
 def _user_stacklevel() -> int:
@@ -433,46 +437,6 @@ def _user_stacklevel() -> int:
         frame = frame.f_back
         level += 1
     return level
-
-
-def _open_source(recipe, name, layer):
-    """The raster source of a layer: one band, or an index of several bands."""
-    from covextract.io.rasters import open_layer
-
-    if layer.bands:
-        from covextract.derive.bands import BandMathSource, ClippedSource
-        from covextract.derive.expression import parse_expression
-
-        bands = {
-            bname: open_layer(
-                recipe.resolve(b.file),
-                band=b.band,
-                nodata=b.nodata,
-                scale=b.scale,
-                offset=b.offset,
-                crs=layer.crs,
-                name=f"{name}.{bname}",
-            )
-            for bname, b in layer.bands.items()
-        }
-        expr = parse_expression(
-            layer.index or layer.expression, bands, key=f"layers.{name}.expression"
-        )
-        src = BandMathSource(bands, expr)
-        if layer.ceiling is not None or layer.valid_range is not None:
-            src = ClippedSource(src, layer.valid_range, layer.ceiling)
-        return src
-    return open_layer(
-        recipe.resolve(layer.file),
-        band=layer.band,
-        nodata=layer.nodata,
-        scale=layer.scale,
-        offset=layer.offset,
-        valid_range=layer.valid_range,
-        crs=layer.crs,
-        name=name,
-        ceiling=layer.ceiling,
-    )
 
 
 def _timed_text(cp) -> str:
@@ -664,7 +628,7 @@ def _timed_assemble(cp, plan, units, periods, vals, qa_pp):
 def _run_change(cp, units, geoms, cache, advance, threads, client):
     """Per-pixel change between two periods, summarised per unit."""
     from covextract.engine.zonal import zonal_units
-    from covextract.timed import ChangeSource, CollapsedSource
+    from covextract.sources.derived import ChangeSource, CollapsedSource
 
     t = cp.timed
     series, how = t["series"], t["spec"].collapse
@@ -1064,7 +1028,7 @@ def covariate_source(plan, cp):
     src = plan.sources[cp.layer_name]
     weight_by = getattr(cp.spec, "weight_by", None)
     if weight_by:
-        from covextract.derive.bands import WeightedSource
+        from covextract.sources.weighted import WeightedSource
 
         src = WeightedSource(src, plan.sources[weight_by])
     return src
@@ -1422,13 +1386,6 @@ def _nodata_text(src, layer) -> str:
     return text
 
 
-def _layer_files(recipe, name) -> list:
-    layer = recipe.layers[name]
-    if layer.bands:
-        return [(f"layer:{name}.{b}", recipe.resolve(spec.file)) for b, spec in layer.bands.items()]
-    return [(f"layer:{name}", recipe.resolve(layer.file))]
-
-
 def _proxy_config(recipe, cov, table, problem, i):
     """Zones and totals (reallocate) or known counts (calibrate) of a proxy covariate."""
     from covextract.errors import TableError
@@ -1723,13 +1680,8 @@ def input_files(plan: Plan) -> list[dict]:
     inputs.append({"role": "study_table", "path": plan.table.path})
     if recipe.units is not None and recipe.units.boundaries is not None:
         inputs.append({"role": "boundaries", "path": recipe.resolve(recipe.units.boundaries.file)})
-    for name in plan.sources:
-        if name in plan.series:
-            s = plan.series[name]
-            for period in s.periods:
-                inputs.append({"role": f"layer:{name}:{period.label}", "path": s.path(period)})
-            continue
-        for role, path in _layer_files(recipe, name):
+    for opened in plan.layers.values():
+        for role, path in opened.input_files():
             inputs.append({"role": role, "path": path})
     for cp in plan.covariates:
         spec = getattr(cp.spec, "reallocate", None)

@@ -114,7 +114,7 @@ def _layer_definition(recipe, name) -> dict:
 def plan_work(plan) -> list[CovariateWork]:
     """The pieces of every covariate of a plan, with their covariate fingerprints."""
     from covextract import __version__
-    from covextract.pipeline import _layer_files, timed_periods
+    from covextract.pipeline import timed_periods
 
     recipe = plan.recipe
     works = []
@@ -154,11 +154,11 @@ def plan_work(plan) -> list[CovariateWork]:
                 for p in [*t["earlier"], *t["periods"]]
             ]
         else:
-            inputs = list(_layer_files(recipe, cp.layer_name))
+            inputs = plan.layers[cp.layer_name].input_files()
         weight_by = getattr(cp.spec, "weight_by", None)
         if weight_by:
             entry["weight_by"] = _layer_definition(recipe, weight_by)
-            inputs += list(_layer_files(recipe, weight_by))
+            inputs += plan.layers[weight_by].input_files()
         if cp.proxy is not None:
             spec = getattr(cp.spec, "reallocate", None)
             if spec is not None:
