@@ -7,7 +7,7 @@ from affine import Affine
 from numpy.testing import assert_allclose
 
 from covextract.errors import UnknownClassWarning
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 
 T = Affine(0.001, 0, 10.0, 0, -0.001, 1.0)  # lat/lon grid near the equator
 CLASSES = {1: "cropland", 2: "forest", 3: "grassland", 4: "built"}

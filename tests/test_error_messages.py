@@ -1,8 +1,8 @@
 """Every bad input, end to end: the message names the problem and the place; nothing is written.
 
 Each error case builds one broken scenario in a copy of the invented demo and
-checks three doors into it: :func:`covextract.pipeline.run` raises the named
-error class, :func:`covextract.pipeline.check_recipe` lists the problem with
+checks three doors into it: :func:`covextract.run.run` raises the named
+error class, :func:`covextract.run.check_recipe` lists the problem with
 the recipe file, line and key, and the CLI (``run`` and ``check``) exits with
 1 and prints the message on stderr without a traceback. No case may write a
 file. Inputs that are suspect but usable (points at (0, 0), units off a layer,
@@ -38,7 +38,7 @@ from covextract.errors import (
     TableError,
     UnitOutsideLayerWarning,
 )
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 
 runner = CliRunner()
 

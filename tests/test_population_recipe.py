@@ -7,7 +7,7 @@ from numpy.testing import assert_allclose
 
 from covextract.derive.population import CalibrationWarning
 from covextract.errors import RecipeError, TableError
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe
 
 

@@ -14,7 +14,7 @@ import pandas as pd
 import pytest
 
 from covextract.demo import demo_data_folder
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 
 REPO = Path(__file__).resolve().parents[1]
 RECIPES = sorted((REPO / "recipes").glob("*.yaml")) + [demo_data_folder() / "recipe.yaml"]

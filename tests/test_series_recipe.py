@@ -8,7 +8,7 @@ from affine import Affine
 from numpy.testing import assert_allclose
 
 from covextract.errors import InputFileError, LagZeroWarning, TableError
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe
 
 T = Affine(0.01, 0, 10.0, 0, -0.01, 1.0)

@@ -262,10 +262,11 @@ class Covariate:
 
     def column(self, name: str, stat: Statistic, input_unit: str, where="table", **fill) -> Column:
         """A :class:`Column` with the statistic's unit and filled definition."""
+        fill.setdefault("threshold", self.threshold)
         return Column(
             name,
             stat,
-            stat.define(threshold=self.threshold, rule=self.rule, **fill),
+            stat.define(rule=self.rule, **fill),
             stat.unit(input_unit),
             where,
         )

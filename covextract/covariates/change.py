@@ -63,7 +63,7 @@ class ChangeCovariate(Covariate):
         return True
 
     def compute(self, ctx: ComputeContext) -> Outcome:
-        from covextract.timed import ChangeSource, CollapsedSource
+        from covextract.sources.derived import ChangeSource, CollapsedSource
         from covextract.engine.zonal import zonal_units
 
         plan = ctx.plan

@@ -51,30 +51,8 @@ def nodata_text(src, layer) -> str:
 
 
 def source_text(plan, name) -> str:
-    """What a layer reads, with paths relative to the recipe's folder."""
-    from covextract.io.paths import shareable_path
-
-    recipe = plan.recipe
-    layer = recipe.layers[name]
-    base = recipe.base_dir
-    series = plan.series.get(name)
-    if series is not None and series.periods:
-        first, last = series.periods[0].label, series.periods[-1].label
-        n, gaps = len(series.periods), len(series.gaps)
-        gap_text = f", {gaps} gap(s)" if gaps else ", no gaps"
-        if layer.variable is not None:
-            return (
-                f"NetCDF cube {shareable_path(recipe.resolve(layer.file), base)}, variable "
-                f"{layer.variable}, {n} periods ({series.step.text}) {first} to {last}{gap_text}"
-            )
-        return f"{n} files {layer.file} ({series.step.text}), {first} to {last}{gap_text}"
-    if layer.bands:
-        parts = [
-            f"{b} = {shareable_path(recipe.resolve(spec.file), base)} band {spec.band}"
-            for b, spec in layer.bands.items()
-        ]
-        return f"band math {layer.index or layer.expression!r} of " + ", ".join(parts)
-    return f"{shareable_path(recipe.resolve(layer.file), base)}, band {layer.band}"
+    """What a layer reads (file, bands, template and period range), no local folder names."""
+    return plan.layers[name].describe()
 
 
 def codebook_rows(cov, plan, learnt: dict) -> list[dict]:

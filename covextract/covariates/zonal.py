@@ -36,7 +36,7 @@ class ZonalCovariate(Covariate):
             self._column(f"{self.prefix}_{s.column}", s, **fill) for s in self.stats
         ]
         if weight_by and self.layer_name in ctx.sources and weight_by in ctx.sources:
-            from covextract.derive.bands import WeightedSource
+            from covextract.sources.weighted import WeightedSource
             from covextract.errors import CovextractError
 
             try:
@@ -57,7 +57,7 @@ class ZonalCovariate(Covariate):
     def source(self, plan):
         src = plan.sources[self.layer_name]
         if self.spec.weight_by:
-            from covextract.derive.bands import WeightedSource
+            from covextract.sources.weighted import WeightedSource
 
             src = WeightedSource(src, plan.sources[self.spec.weight_by])
         return src

@@ -570,8 +570,8 @@ class Layer(_Model):
     @classmethod
     def _valid_every(cls, value: str | None) -> str | None:
         if value is not None:
+            from covextract.core.periods import parse_every
             from covextract.errors import RecipeError
-            from covextract.io.series import parse_every
 
             try:
                 parse_every(value)
@@ -720,8 +720,8 @@ class Layer(_Model):
                     )
                 )
             if self.expression is not None:
-                from covextract.derive.expression import parse_expression
                 from covextract.errors import RecipeError
+                from covextract.sources.expression import parse_expression
 
                 try:
                     parse_expression(self.expression, self.bands)
@@ -1379,8 +1379,8 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
             )
         )
     if isinstance(cov.get("periods"), str):
+        from covextract.core.periods import parse_selection
         from covextract.errors import RecipeError
-        from covextract.io.series import parse_selection
 
         try:
             parse_selection(cov["periods"])

@@ -52,6 +52,7 @@ class Plan:
     output_paths: dict
     problems: list = field(default_factory=list)
     series: dict = field(default_factory=dict)
+    layers: dict = field(default_factory=dict)
 
     def layer_files(self, name: str) -> list:
         """``(role, path)`` of the files a layer reads (one per period for a series)."""
@@ -175,7 +176,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 break
 
     # layers
-    sources, series = _open_layers(recipe, problem)
+    layers, sources, series = _open_layers(recipe, problem)
 
     # covariates: each entry becomes an object of its kind, which names its columns
     ctx = PlanContext(recipe, table, unit_sets, sources, series, problem)
@@ -214,7 +215,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 f"{src.grid.crs.to_string()}); check the layer file and the study's CRS",
                 cov.where("layer"),
             )
-    return Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series)
+    return Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series, layers)
 
 
 def _check_table(recipe, table, table_path, paths, problem) -> None:
@@ -238,80 +239,37 @@ def _check_table(recipe, table, table_path, paths, problem) -> None:
 
 
 def _open_layers(recipe, problem) -> tuple[dict, dict]:
-    """Every layer some covariate uses: ``(sources, series)``; a series' source is its first period."""
+    """Every layer some covariate uses: ``(layers, sources, series)``.
+
+    ``layers`` holds the opened :class:`~covextract.sources.base.LayerSource`
+    of each layer, ``sources`` what the engine reads (a series: its first
+    period), ``series`` the series indexes.
+    """
+    from covextract.sources.registry import open_source
+
     used = set()
     for c in recipe.covariates:
         used |= {c.layer, getattr(c, "since", None), getattr(c, "weight_by", None)}
-    sources, series = {}, {}
+    layers, sources, series = {}, {}, {}
     for name, layer in recipe.layers.items():
         if name not in used:
             continue
         try:
-            opened = _open_source(recipe, name, layer)
+            opened = open_source(name, layer, resolve=recipe.resolve, base_dir=recipe.base_dir)
         except CovextractError as exc:
             problem(exc, f"layers.{name}.{'bands' if layer.bands else 'file'}")
             continue
-        if getattr(layer, "is_series", False):
-            series[name] = opened
-            sources[name] = opened.source(opened.periods[0])
+        layers[name] = opened
+        if opened.is_series:
+            series[name] = opened.source
+            sources[name] = opened.source.source(opened.source.periods[0])
         else:
-            sources[name] = opened
-    return sources, series
-
-
-def _open_source(recipe, name, layer):
-    """The source of a layer: one band, an index of several bands, or a series."""
-    from covextract.io.rasters import open_layer
-
-    if getattr(layer, "is_series", False):
-        from covextract.timed import open_series
-
-        return open_series(recipe, name, layer)
-    if layer.bands:
-        from covextract.derive.bands import BandMathSource, ClippedSource
-        from covextract.derive.expression import parse_expression
-
-        bands = {
-            bname: open_layer(
-                recipe.resolve(b.file),
-                band=b.band,
-                nodata=b.nodata,
-                scale=b.scale,
-                offset=b.offset,
-                crs=layer.crs,
-                name=f"{name}.{bname}",
-            )
-            for bname, b in layer.bands.items()
-        }
-        expr = parse_expression(
-            layer.index or layer.expression, bands, key=f"layers.{name}.expression"
-        )
-        src = BandMathSource(bands, expr)
-        if layer.ceiling is not None or layer.valid_range is not None:
-            src = ClippedSource(src, layer.valid_range, layer.ceiling)
-        return src
-    return open_layer(
-        recipe.resolve(layer.file),
-        band=layer.band,
-        nodata=layer.nodata,
-        scale=layer.scale,
-        offset=layer.offset,
-        valid_range=layer.valid_range,
-        crs=layer.crs,
-        name=name,
-        ceiling=layer.ceiling,
-    )
+            sources[name] = opened.source
+    return layers, sources, series
 
 
 def _layer_files(plan, name) -> list:
-    recipe = plan.recipe
-    if name in plan.series:
-        s = plan.series[name]
-        return [(f"layer:{name}:{p.label}", s.path(p)) for p in s.periods]
-    layer = recipe.layers[name]
-    if layer.bands:
-        return [(f"layer:{name}.{b}", recipe.resolve(spec.file)) for b, spec in layer.bands.items()]
-    return [(f"layer:{name}", recipe.resolve(layer.file))]
+    return plan.layers[name].input_files()
 
 
 def _line(recipe, key):

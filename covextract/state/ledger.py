@@ -10,7 +10,7 @@ those periods as still to do and computes them again.
 Conventions
 -----------
 - Periods are keyed by their first day as ISO 8601 text (``"2021-03-01"``);
-  :class:`covextract.io.series.Period` objects, :class:`datetime.date` and
+  :class:`covextract.core.periods.Period` objects, :class:`datetime.date` and
   strings are all accepted where a period is expected.
 - Times (``computed_at``, ``started``, ``finished``) are UTC, ISO 8601 with
   seconds and an explicit ``+00:00``.

@@ -217,7 +217,7 @@ def test_demo_lays_out_runs_and_prints_the_outputs(tmp_path):
     assert "villages per WMO category:" in result.stdout
     spi = pd.read_csv(folder / "out" / "villages_spi.csv", dtype=str, keep_default_na=False)
     assert len(spi) == 40
-    assert spi["spi_mean_spi3_mean_1m_lag1_category"].ne("").all()
+    assert spi["spi3_mean_category"].ne("").all()
     assert spi["spi_qa"].eq("").all()
 
 

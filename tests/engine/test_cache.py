@@ -55,7 +55,7 @@ def test_corrupt_file_warns_and_is_ignored(tmp_path, grid):
 
 def test_pipeline_second_run_builds_no_weights_and_unit_change_rebuilds(tmp_path):
     from covextract.demo import lay_out_demo
-    from covextract.pipeline import run
+    from covextract.run import run
 
     folder = lay_out_demo(tmp_path / "demo")
     first = run(folder / "recipe.yaml")

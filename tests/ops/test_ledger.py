@@ -15,8 +15,8 @@ import sqlite3
 
 import pytest
 
+from covextract.core.periods import Period
 from covextract.errors import CovextractError, OutputError
-from covextract.io.series import Period
 from covextract.state.ledger import (
     SCHEMA_VERSION,
     Ledger,

@@ -2,7 +2,7 @@
 
 The scenario is the invented demo district (36 monthly rainfall and NDVI
 rasters). "Equals a full run" is checked byte for byte on the written table,
-codebook and panel files, against :func:`covextract.pipeline.run` on a
+codebook and panel files, against :func:`covextract.run.run` on a
 separate copy of the same inputs with its own state folder.
 """
 
@@ -22,7 +22,7 @@ from covextract.state.ledger import LEDGER_NAME, Ledger
 from covextract.state.lock import EXIT_CODES
 from covextract.state.pieces import PIECES_DIR, PieceWarning
 from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
-from covextract.pipeline import run
+from covextract.run import run
 
 #: pieces of the recipe: 36 months of the rain mean (shared by two covariates), 24 of the
 #: NDVI mean, 36 of the rain maximum, and one for the static NDVI covariate
@@ -318,7 +318,7 @@ def test_command_line_exit_codes_and_summary(scene, tmp_path):
 
 
 def test_a_failing_refresh_keeps_the_outputs_and_records_the_error(scene, monkeypatch):
-    import covextract.pipeline as pipeline
+    import covextract.run.execute as execute
     from covextract.cli.refresh import status_lines
     from covextract.errors import CovextractError, OutputError
 
@@ -339,7 +339,7 @@ def test_a_failing_refresh_keeps_the_outputs_and_records_the_error(scene, monkey
     def disk_full(*args, **kwargs):
         raise OutputError("cannot write the piece: [Errno 28] No space left on device")
 
-    monkeypatch.setattr(pipeline, "compute_covariate", disk_full)
+    monkeypatch.setattr(execute, "compute_covariate", disk_full)
     with pytest.raises(OutputError, match="No space left"):
         refresh(recipe)
     assert _outputs(folder) == before

@@ -27,7 +27,7 @@ from covextract.demo import lay_out_demo
 from covextract.state.ledger import Ledger
 from covextract.state.lock import EXIT_CODES, LockedError
 from covextract.ops.refresh import refresh
-from covextract.pipeline import run
+from covextract.run import run
 
 LATE = ("rain/rain_202112.tif", "ndvi_monthly/ndvi_202112.tif")
 TABLE = Path("table.csv")  # as _outputs keys it: relative to out/

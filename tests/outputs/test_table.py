@@ -1,6 +1,6 @@
 """The written study table: the user's rows and cells untouched, new columns appended.
 
-Runs go through :func:`covextract.pipeline.run` on a copy of the invented demo
+Runs go through :func:`covextract.run.run` on a copy of the invented demo
 scenario (``demo_dir``) or on small tables written here.
 """
 
@@ -17,7 +17,7 @@ from numpy.testing import assert_allclose
 
 from covextract.errors import CovextractError, OutputError, RecipeError
 from covextract.outputs.manifest import verify_manifest
-from covextract.pipeline import check_recipe, run
+from covextract.run import check_recipe, run
 
 
 def read_text_csv(path) -> pd.DataFrame:

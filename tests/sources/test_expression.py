@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from covextract.derive.expression import parse_expression
 from covextract.errors import RecipeError
+from covextract.sources.expression import parse_expression
 
 
 def test_ndvi_of_reflectance_pairs_equals_the_formula():

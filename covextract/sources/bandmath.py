@@ -1,13 +1,18 @@
-"""A layer computed per pixel from bands of several rasters on one grid."""
+"""Band-math layers: an index computed per pixel from bands of several rasters on one grid.
+
+:class:`BandMathKind` opens a layer spec with ``bands:`` and ``index:`` or
+``expression:`` as a :class:`BandMathSource`, wrapped in a
+:class:`ClippedSource` when the layer sets ``valid_range`` or ``ceiling``.
+"""
 
 from __future__ import annotations
 
 import numpy as np
 
-from covextract.derive.expression import Expression
 from covextract.errors import RasterError
+from covextract.sources.expression import Expression, parse_expression
 
-__all__ = ["BandMathSource", "ClippedSource", "WeightedSource"]
+__all__ = ["BandMathSource", "ClippedSource", "BandMathKind"]
 
 
 class BandMathSource:
@@ -61,41 +66,6 @@ class BandMathSource:
         return out, valid & np.isfinite(out)
 
 
-class WeightedSource:
-    """A layer whose statistics are weighted by another layer on the same grid.
-
-    ``to_values`` returns ``(values, valid, factor)``: a pixel is valid only
-    where both layers are valid (cells without a weight are excluded, and so
-    lower the valid share), and ``factor`` is the weight layer's value (for
-    example people per km², giving population-weighted means).
-    """
-
-    def __init__(self, source, weight) -> None:
-        if not source.grid.same_lattice(weight.grid):
-            g1, g2 = source.grid, weight.grid
-            raise RasterError(
-                f"{source.path} ({g1.width}x{g1.height}, {g1.crs.to_string()}, transform "
-                f"{tuple(g1.transform)[:6]}) and the weight layer {weight.path} ({g2.width}x"
-                f"{g2.height}, {g2.crs.to_string()}, transform {tuple(g2.transform)[:6]}) are not "
-                "on the same grid; weight_by needs both on one grid. Warp one onto the other first."
-            )
-        self.source = source
-        self.weight = weight
-        self.grid = source.grid
-        self.path = source.path
-
-    def read_block(self, window):
-        """Both layers' stored values."""
-        return (self.source.read_block(window), self.weight.read_block(window))
-
-    def to_values(self, stored):
-        """Values, joint validity and the weight factor (negative weights are invalid)."""
-        v, m = self.source.to_values(stored[0])
-        f, fm = self.weight.to_values(stored[1])
-        ok = m & fm & (f >= 0)
-        return v, ok, np.where(ok, f, 0.0)
-
-
 class ClippedSource:
     """``valid_range`` and ``ceiling`` applied to a derived layer's values (band math).
 
@@ -121,3 +91,55 @@ class ClippedSource:
         if self.ceiling is not None:
             values = np.where(valid, np.minimum(values, self.ceiling), values)
         return values, valid
+
+
+class BandMathKind:
+    """Named bands of rasters on one grid, combined per pixel by an index or an expression."""
+
+    name = "band math"
+    series = False
+
+    def matches(self, layer) -> bool:
+        """A layer with ``bands``."""
+        return bool(layer.bands)
+
+    def open(self, name, layer, *, resolve, base_dir):
+        """Open every band, check the expression and wrap the clipping rules when set."""
+        from covextract.io.rasters import open_layer
+
+        bands = {
+            bname: open_layer(
+                resolve(b.file),
+                band=b.band,
+                nodata=b.nodata,
+                scale=b.scale,
+                offset=b.offset,
+                crs=layer.crs,
+                name=f"{name}.{bname}",
+            )
+            for bname, b in layer.bands.items()
+        }
+        expr = parse_expression(
+            layer.index or layer.expression, bands, key=f"layers.{name}.expression"
+        )
+        src = BandMathSource(bands, expr)
+        if layer.ceiling is not None or layer.valid_range is not None:
+            src = ClippedSource(src, layer.valid_range, layer.ceiling)
+        return src
+
+    def input_files(self, opened) -> list:
+        """Every band's file, role ``layer:<name>.<band>``, in the recipe's band order."""
+        return [
+            (f"layer:{opened.name}.{bname}", opened.resolve(b.file))
+            for bname, b in opened.layer.bands.items()
+        ]
+
+    def describe(self, opened) -> str:
+        """``band math ndvi from bands red (rasters/red.tif band 1) and nir (...)``."""
+        layer = opened.layer
+        parts = [
+            f"{bname} ({opened.shown(b.file)} band {b.band})" for bname, b in layer.bands.items()
+        ]
+        listed = parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
+        word = "band" if len(parts) == 1 else "bands"
+        return f"band math {layer.index or layer.expression} from {word} {listed}"

@@ -14,7 +14,7 @@ import yaml
 from numpy.testing import assert_allclose
 
 import covextract
-from covextract.pipeline import run
+from covextract.run import run
 
 NDVI_STATS = ["mean", "std", "q90", "median", "count", "valid_share", "area_km2"]
 

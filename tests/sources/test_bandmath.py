@@ -7,11 +7,11 @@ from affine import Affine
 from numpy.testing import assert_allclose
 from shapely.geometry import box
 
-from covextract.derive.bands import BandMathSource
-from covextract.derive.expression import parse_expression
 from covextract.engine.zonal import zonal
 from covextract.errors import RasterError
 from covextract.io.rasters import open_layer
+from covextract.sources.bandmath import BandMathSource
+from covextract.sources.expression import parse_expression
 from covextract.stats.names import parse_stat
 
 T = Affine(1.0, 0, 0, 0, -1.0, 2.0)

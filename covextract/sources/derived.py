@@ -1,37 +1,17 @@
-"""Sources made from several periods of a series: collapsed sides and per-pixel change.
+"""Sources derived from other sources on one grid: periods collapsed, and the change between two.
 
-Also opens a series layer (template or NetCDF cube) for the planner.
+Used for the change of a series between two selections of periods: each
+selection is collapsed per pixel (:class:`CollapsedSource`) and the later
+minus the earlier is taken per pixel (:class:`ChangeSource`).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["open_series", "CollapsedSource", "ChangeSource"]
+from covextract.errors import RasterError
 
-
-def open_series(recipe, name, layer):
-    """The :class:`~covextract.io.series.SeriesIndex` of a series layer."""
-    from covextract.io.series import discover_series, open_cube
-
-    options = {
-        "nodata": layer.nodata,
-        "scale": layer.scale,
-        "offset": layer.offset,
-        "valid_range": layer.valid_range,
-        "ceiling": layer.ceiling,
-        "name": name,
-    }
-    if layer.variable is not None:
-        return open_cube(
-            recipe.resolve(layer.file),
-            variable=layer.variable,
-            crs=layer.crs,
-            every=layer.every,
-            **options,
-        )
-    options.update({"band": layer.band, "crs": layer.crs})
-    return discover_series(layer.file, layer.every, base_dir=recipe.base_dir, open_options=options)
+__all__ = ["CollapsedSource", "ChangeSource"]
 
 
 class CollapsedSource:
@@ -42,8 +22,6 @@ class CollapsedSource:
     """
 
     def __init__(self, sources, how: str = "mean") -> None:
-        from covextract.errors import RasterError
-
         if not sources:
             raise ValueError("no periods to collapse")
         first = sources[0]
@@ -88,8 +66,6 @@ class ChangeSource:
     """
 
     def __init__(self, later, earlier, part: str = "change") -> None:
-        from covextract.errors import RasterError
-
         if not later.grid.same_lattice(earlier.grid):
             raise RasterError(
                 f"{later.path} and {earlier.path} are on different grids; a per-pixel change "
