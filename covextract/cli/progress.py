@@ -60,9 +60,10 @@ def make_progress(*, quiet: bool, stream=None) -> Progress:
 class _Counting(Progress):
     """Shared bookkeeping: the current pass, its block count under a lock, its clock."""
 
-    def __init__(self) -> None:
+    def __init__(self, clock=time.perf_counter) -> None:
         # advance() comes from the engine's worker threads; one lock keeps the count exact
         self._lock = threading.Lock()
+        self._clock = clock
         self._label: str | None = None
         self._total = 0
         self._done = 0
@@ -71,7 +72,7 @@ class _Counting(Progress):
     def start(self, label: str, total: int) -> None:
         with self._lock:
             self._label, self._total, self._done = label, int(total), 0
-            self._t0 = time.perf_counter()
+            self._t0 = self._clock()
 
     def advance(self, n: int = 1) -> None:
         with self._lock:
@@ -84,7 +85,7 @@ class _Counting(Progress):
                 return None
             label, done = self._label, self._done
             self._label = None
-            return label, done, time.perf_counter() - self._t0
+            return label, done, self._clock() - self._t0
 
 
 class LineProgress(_Counting):
@@ -97,10 +98,12 @@ class LineProgress(_Counting):
     ----------
     stream : file
         A text stream (standard error in the command line).
+    clock : callable, optional
+        Seconds as a float; :func:`time.perf_counter` by default.
     """
 
-    def __init__(self, stream) -> None:
-        super().__init__()
+    def __init__(self, stream, clock=time.perf_counter) -> None:
+        super().__init__(clock)
         self.stream = stream
 
     def _line(self, text: str) -> None:
@@ -130,10 +133,12 @@ class BarProgress(_Counting):
     ----------
     console : rich.console.Console
         The console to draw on (standard error in the command line).
+    clock : callable, optional
+        Seconds as a float; :func:`time.perf_counter` by default.
     """
 
-    def __init__(self, console) -> None:
-        super().__init__()
+    def __init__(self, console, clock=time.perf_counter) -> None:
+        super().__init__(clock)
         self.console = console
         self._bar = None
         self._task = None

@@ -83,15 +83,17 @@ def print_summary(result, *, max_rows: int = 8, console=None) -> None:
     console.print(
         f"{counted(s['units'], 'unit')}, {counted(len(layers), 'layer')} "
         f"({', '.join(layers)}), {columns_text(values, qa)}",
+        soft_wrap=True,
         markup=False,
         highlight=False,
     )
-    console.print(weights_text(s), markup=False, highlight=False)
+    console.print(weights_text(s), soft_wrap=True, markup=False, highlight=False)
     for name, fit in s.get("proxy_fits", {}).items():
         console.print(
             f"calibration {name}: log(count) = {fit['a']:.4g} + {fit['b']:.4g} log(light); "
             f"R2 {fit['r2']:.3f}, RMSE {fit['rmse']:.3g} (log scale), n {fit['n']}, "
             f"smearing {fit['smearing']:.4g}",
+            soft_wrap=True,
             markup=False,
             highlight=False,
         )
@@ -99,12 +101,14 @@ def print_summary(result, *, max_rows: int = 8, console=None) -> None:
     if missing:
         console.print(
             "units without values: " + ", ".join(f"{k}: {v}" for k, v in missing.items()),
+            soft_wrap=True,
             markup=False,
             highlight=False,
         )
     if s["qa_counts"]:
         console.print(
             "QA codes: " + ", ".join(f"{k} x{v}" for k, v in sorted(s["qa_counts"].items())),
+            soft_wrap=True,
             markup=False,
             highlight=False,
         )
@@ -125,6 +129,7 @@ def print_summary(result, *, max_rows: int = 8, console=None) -> None:
     console.print(table)
     console.print(
         preview_text(len(values), len(shown), len(qa), len(values) - len(present)),
+        soft_wrap=True,
         markup=False,
         highlight=False,
     )
