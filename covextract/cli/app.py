@@ -24,6 +24,10 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    # Plain help, as click formats it: typer 0.29's rich help prints a "<bool>" type
+    # after every flag (including --help), which reads as if the flag took a value.
+    # Plain text is also what a log or a pipe should get, and it needs no rich import.
+    rich_markup_mode=None,
 )
 
 app.command("run")(_run.run_command)

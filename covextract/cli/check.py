@@ -10,7 +10,7 @@ from covextract.cli.common import DEBUG_HELP, EXIT_ERROR, cli_errors
 
 
 def check_command(
-    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    recipe: Path = typer.Argument(..., metavar="RECIPE", help="The recipe file (YAML)."),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Check RECIPE and every input it names; list every problem found."""

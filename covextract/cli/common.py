@@ -16,6 +16,11 @@ EXIT_ERROR = 1
 DEBUG_HELP = "Show the full traceback of an error."
 
 
+def counted(n: int, singular: str, plural: str | None = None) -> str:
+    """``"1 layer"``, ``"2 layers"``, ``"0 layers"``: a count with its noun in the right number."""
+    return f"{n} {singular if n == 1 else (plural or singular + 's')}"
+
+
 def _show_warning(message, category, filename, lineno, file=None, line=None):
     name = getattr(category, "__name__", "Warning")
     typer.secho(f"warning ({name}): {message}", err=True, fg="yellow")

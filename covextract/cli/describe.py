@@ -12,7 +12,9 @@ VECTOR_EXTENSIONS = {".gpkg", ".geojson", ".json", ".shp", ".fgb", ".csv", ".par
 
 
 def describe_command(
-    path: Path = typer.Argument(..., help="A raster (GeoTIFF...) or vector/table file."),
+    path: Path = typer.Argument(
+        ..., metavar="FILE", help="A raster (GeoTIFF...) or vector/table file."
+    ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Describe FILE: CRS, grid, bounds, type, nodata, scale; or columns and geometry types."""

@@ -10,7 +10,7 @@ from covextract.cli.common import DEBUG_HELP, cli_errors
 
 
 def refresh_command(
-    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    recipe: Path = typer.Argument(..., metavar="RECIPE", help="The recipe file (YAML)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar; summary only."),
     threads: int = typer.Option(
         None, "--threads", min=1, help="Local threads (default: one per core)."
@@ -129,7 +129,7 @@ def status_lines(status) -> list[str]:
 
 
 def status_command(
-    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    recipe: Path = typer.Argument(..., metavar="RECIPE", help="The recipe file (YAML)."),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Show which periods of RECIPE are computed, due or missing, and the last refresh."""

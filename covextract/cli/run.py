@@ -10,7 +10,7 @@ from covextract.cli.common import DEBUG_HELP, cli_errors
 
 
 def run_command(
-    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    recipe: Path = typer.Argument(..., metavar="RECIPE", help="The recipe file (YAML)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar or summary."),
     threads: int = typer.Option(
         None, "--threads", min=1, help="Local threads (default: one per core)."

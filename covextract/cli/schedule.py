@@ -11,7 +11,7 @@ from covextract.cli.common import DEBUG_HELP, EXIT_ERROR, cli_errors
 
 
 def schedule_command(
-    recipe: Path = typer.Argument(..., help="The recipe file (YAML)."),
+    recipe: Path = typer.Argument(..., metavar="RECIPE", help="The recipe file (YAML)."),
     day: int = typer.Option(
         1,
         "--day",

@@ -38,6 +38,11 @@ def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str
 class WeightCache:
     """Weights stored as ``<folder>/weights/<key>.npz``.
 
+    The counters tell a run's summary where its weight sets came from:
+    ``builds`` (stored with :meth:`put`), ``loaded`` (read from a file) and
+    ``reused`` (taken from memory again within the run); ``hits`` is
+    ``loaded + reused``.
+
     Parameters
     ----------
     folder : Path or None
@@ -46,9 +51,19 @@ class WeightCache:
 
     def __init__(self, folder) -> None:
         self.folder = Path(folder) / "weights" if folder is not None else None
-        self.hits = 0
+        #: weight sets handed to :meth:`put`, i.e. built in this run
         self.builds = 0
+        #: sets read from the state folder's files (made by an earlier run)
+        self.loaded = 0
+        #: times :meth:`get` returned a set already in memory (built or loaded earlier
+        #: in this run); a brand-new folder can reuse its few sets many times
+        self.reused = 0
         self._memo: dict = {}  # the last few weight sets of this run, also without a folder
+
+    @property
+    def hits(self) -> int:
+        """Sets :meth:`get` returned, from the folder or from memory: ``loaded + reused``."""
+        return self.loaded + self.reused
 
     def path(self, key: str) -> Path | None:
         """File of ``key``."""
@@ -57,7 +72,7 @@ class WeightCache:
     def get(self, key: str) -> WeightSet | None:
         """Load weights, or ``None`` when absent; a corrupt file warns and is ignored."""
         if key in self._memo:
-            self.hits += 1
+            self.reused += 1
             return self._memo[key]
         path = self.path(key)
         if path is None or not path.exists():
@@ -73,7 +88,7 @@ class WeightCache:
                 stacklevel=2,
             )
             return None
-        self.hits += 1
+        self.loaded += 1
         self._remember(key, ws)
         return ws
 
@@ -84,6 +99,7 @@ class WeightCache:
 
     def put(self, key: str, weights: WeightSet) -> None:
         """Store weights atomically (in memory only when the cache has no folder)."""
+        self.builds += 1
         self._remember(key, weights)
         path = self.path(key)
         if path is None:

@@ -81,3 +81,53 @@ def test_pipeline_second_run_builds_no_weights_and_unit_change_rebuilds(tmp_path
         fourth = run(folder / "recipe.yaml")
     assert fourth.summary["weights_built"] == 4
     assert fourth.table.equals(third.table)
+
+
+def _weights(grid, x0=1.3):
+    return build_weights(np.array([box(x0, 1.2, 9.7, 14.1)], dtype=object), grid, "overlap")
+
+
+def test_counters_tell_built_loaded_and_reused_apart(tmp_path, grid):
+    # a brand-new state folder: one set built, then reused from memory; nothing loaded
+    first = WeightCache(tmp_path)
+    key = weights_key(grid.fingerprint, "units-a", "overlap")
+    assert first.get(key) is None
+    first.put(key, _weights(grid))
+    for _ in range(107):
+        assert first.get(key) is not None
+    assert (first.builds, first.loaded, first.reused) == (1, 0, 107)
+    assert first.hits == 107  # hits keeps its meaning: loaded + reused
+    # the next run: the set is read from the state folder once, then reused from memory
+    second = WeightCache(tmp_path)
+    for _ in range(3):
+        assert second.get(key) is not None
+    assert (second.builds, second.loaded, second.reused) == (0, 1, 2)
+    assert second.hits == 3
+
+
+def test_counters_without_a_folder_and_after_the_memory_forgets(tmp_path, grid):
+    memory_only = WeightCache(None)
+    key = weights_key(grid.fingerprint, "u", "overlap")
+    memory_only.put(key, _weights(grid))
+    assert memory_only.get(key) is not None
+    assert (memory_only.builds, memory_only.loaded, memory_only.reused) == (1, 0, 1)
+    # the memory holds the last four sets; a fifth pushes the first out, which is then
+    # read back from the folder (a load, not a reuse)
+    cache = WeightCache(tmp_path)
+    keys = [weights_key(grid.fingerprint, f"u{i}", "overlap") for i in range(5)]
+    for i, k in enumerate(keys):
+        cache.put(k, _weights(grid, x0=1.3 + i / 10))
+    assert cache.get(keys[0]) is not None
+    assert cache.get(keys[4]) is not None
+    assert (cache.builds, cache.loaded, cache.reused) == (5, 1, 1)
+
+
+def test_a_missing_or_corrupt_file_counts_nothing(tmp_path, grid):
+    cache = WeightCache(tmp_path)
+    key = weights_key(grid.fingerprint, "u", "overlap")
+    assert cache.get(key) is None
+    cache.path(key).parent.mkdir(parents=True)
+    cache.path(key).write_bytes(b"not a zip archive")
+    with pytest.warns(CacheWarning):
+        assert cache.get(key) is None
+    assert (cache.builds, cache.loaded, cache.reused, cache.hits) == (0, 0, 0, 0)
