@@ -28,7 +28,9 @@ def demo_command(
 
         folder = lay_out_demo(out)
         typer.echo(f"demo scenario (invented data) laid out in {folder}")
-        result = run(folder / "recipe.yaml", write=True, progress=None)
+        from covextract.cli.progress import make_progress
+
+        result = run(folder / "recipe.yaml", write=True, progress=make_progress(quiet=False))
         print_summary(result)
         if spi:
             from covextract.demo.spi import SPI_RECIPE, write_spi_series

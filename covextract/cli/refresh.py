@@ -33,12 +33,13 @@ def refresh_command(
     code = 0
     with cli_errors(debug):
         from covextract.state.lock import EXIT_CODES, LockedError
+        from covextract.cli.progress import make_progress
         from covextract.ops.refresh import refresh
 
         try:
             result = refresh(
                 recipe,
-                progress=None,
+                progress=make_progress(quiet=quiet),
                 threads=threads,
                 scheduler=scheduler,
                 recompute=recompute,

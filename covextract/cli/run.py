@@ -28,6 +28,14 @@ def run_command(
         from covextract.cli.summary import print_summary
         from covextract.run import run
 
-        result = run(recipe, write=True, progress=None, threads=threads, scheduler=scheduler)
+        from covextract.cli.progress import make_progress
+
+        result = run(
+            recipe,
+            write=True,
+            progress=make_progress(quiet=quiet),
+            threads=threads,
+            scheduler=scheduler,
+        )
         if not quiet:
             print_summary(result)

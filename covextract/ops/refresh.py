@@ -69,10 +69,14 @@ def refresh(
 
     started = dt.datetime.now(dt.timezone.utc)
     plan = plan_recipe(recipe)
+    progress = progress if progress is not None else Progress()
+    from covextract.run.execute import note_compiling
+
+    note_compiling(plan, progress)
     return execute_incremental(
         plan,
         started,
-        progress=progress if progress is not None else Progress(),
+        progress=progress,
         threads=threads,
         scheduler=scheduler,
         recompute=recompute,

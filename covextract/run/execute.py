@@ -249,7 +249,7 @@ def run(
     started = datetime.now(timezone.utc)
     clock = time.perf_counter()
     plan = plan_recipe(recipe)
-    _note_compiling(progress)
+    note_compiling(plan, progress)
     if write:
         from covextract.run.incremental import execute_incremental
 
@@ -278,12 +278,10 @@ def run(
     return result
 
 
-def _note_compiling(progress: Progress) -> None:
-    try:
-        from covextract.engine.compile_state import kernels_need_compiling
-    except ImportError:  # pragma: no cover - the module lands with the progress work
-        return
-    if kernels_need_compiling():
+def note_compiling(plan, progress: Progress) -> None:
+    from covextract.engine.compile_state import kernels_need_compiling
+
+    if kernels_need_compiling({c.rule for c in plan.covariates}):
         progress.note(
             "compiling the engine's kernels once for this installation (about 15 s; later "
             "runs skip this)"
