@@ -1,25 +1,20 @@
 """The recipe: schema, validation, and YAML loading with line numbers."""
 
-from covextract.recipe.loader import load_recipe
-from covextract.recipe.schema import (
+from covextract.recipe.common import (
     BOUNDARY_SUFFIXES,
-    CATEGORICAL_STATS,
     NAME_PATTERN,
     OUTPUT_TABLE_SUFFIXES,
     RECIPE_VERSION,
     STATE_FOLDER_NAME,
     STUDY_TABLE_SUFFIXES,
-    Boundaries,
-    ColumnBuffer,
-    Covariate,
-    Execution,
-    Layer,
-    Output,
-    Points,
-    Recipe,
-    Study,
-    Units,
 )
+from covextract.recipe.covariates import Covariate
+from covextract.recipe.layers import Layer
+from covextract.recipe.loader import load_recipe
+from covextract.recipe.model import Recipe
+from covextract.recipe.output import Execution, Output
+from covextract.recipe.stat_names import CATEGORICAL_STATS
+from covextract.recipe.study import Boundaries, ColumnBuffer, Points, Study, Units
 
 __all__ = [
     "load_recipe",

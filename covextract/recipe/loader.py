@@ -2,7 +2,7 @@
 
 The YAML is composed into PyYAML nodes, which carry their position in the
 file, and constructed from the same nodes, so each key path of the data has
-a line. Validation errors from :mod:`covextract.recipe.schema` arrive as
+a line. Validation errors from :class:`covextract.recipe.Recipe` arrive as
 pydantic locations (``("covariates", 1, "stats", 0)``); each is mapped to
 the key path a user reads (``covariates[1].stats[0]``) and to the line of
 that key, or of its nearest parent when the key is missing. Pydantic's
@@ -29,7 +29,8 @@ import yaml
 from pydantic import BaseModel, ValidationError
 
 from covextract.errors import InputFileError, RecipeError, RecipeProblem
-from covextract.recipe.schema import NAME_PATTERN, Recipe, _describe, _nearest_line
+from covextract.recipe.common import NAME_PATTERN, describe
+from covextract.recipe.model import Recipe, nearest_line
 
 __all__ = ["load_recipe"]
 
@@ -102,9 +103,9 @@ def load_recipe(
         problems.append(
             RecipeProblem(
                 "the recipe must be a mapping of keys (version, study, layers, covariates, "
-                f"output), got {_describe(data)}",
+                f"output), got {describe(data)}",
                 file=file,
-                line=_nearest_line(lines, ()),
+                line=nearest_line(lines, ()),
             )
         )
     if data is None or not isinstance(data, dict):
@@ -289,7 +290,7 @@ def _problems_from(
             message,
             key=_format_key_path(loc, data) or None,
             file=file,
-            line=_nearest_line(lines, loc),
+            line=nearest_line(lines, loc),
         )
         for loc, message in messages
         if loc not in covered
@@ -310,20 +311,18 @@ def _message(err: dict, loc: tuple) -> str:
         number = isinstance(value, (int, float)) and not isinstance(value, bool)
         extra = "; put it in quotes" if number else ""
         what = "a name (text)" if is_key else "text"
-        return f"expected {what}, got {_describe(value)}{extra}"
+        return f"expected {what}, got {describe(value)}{extra}"
     if kind == "int_type":
         what = "a whole number as key" if is_key else "a whole number"
-        return f"expected {what}, got {_describe(value)}"
+        return f"expected {what}, got {describe(value)}"
     if kind == "float_type":
-        return f"expected a number, got {_describe(value)}"
+        return f"expected a number, got {describe(value)}"
     if kind == "list_type":
         one = isinstance(value, (str, int, float))
         extra = f"; write [{value}] for a list of one" if one else ""
-        return f"expected a list, got {_describe(value)}{extra}"
+        return f"expected a list, got {describe(value)}{extra}"
     if kind in ("dict_type", "model_type", "model_attributes_type"):
-        return "expected a block of key: value lines (or {key: value, ...}), got " + _describe(
-            value
-        )
+        return "expected a block of key: value lines (or {key: value, ...}), got " + describe(value)
     if kind == "literal_error":
         choices = _choices_at(loc)
         if not choices:
@@ -332,7 +331,7 @@ def _message(err: dict, loc: tuple) -> str:
         if isinstance(value, str):
             close = difflib.get_close_matches(value, [str(c) for c in choices], n=1)
             hint = f"; did you mean {close[0]!r}?" if close else ""
-        shown = value if isinstance(value, str) else _describe(value)
+        shown = value if isinstance(value, str) else describe(value)
         return f"invalid choice {shown!r}{hint} (valid: {', '.join(map(str, choices))})"
     if kind == "greater_than":
         return f"must be more than {_plain(ctx.get('gt'))}, got {_plain(value)}"
