@@ -12,6 +12,7 @@ its own error type (a recipe problem with a line, a ``GeometryError``...).
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -204,7 +205,8 @@ def parse_buffer(value: Any, *, describe: Callable[[Any], str] = repr) -> Buffer
     """
     if isinstance(value, Buffer):
         return value
-    if isinstance(value, (int, float)) and not isinstance(value, bool):
+    # numbers.Real takes numpy's numbers too; a yes/no value is not a radius.
+    if isinstance(value, numbers.Real) and not isinstance(value, bool):
         if not math.isfinite(value):
             raise OptionError("a buffer radius must be a finite number of metres")
         if value <= 0:
