@@ -31,6 +31,7 @@ from pydantic import BaseModel, ValidationError
 from covextract.errors import InputFileError, RecipeError, RecipeProblem
 from covextract.recipe.common import NAME_PATTERN, describe
 from covextract.recipe.model import Recipe, nearest_line
+from covextract.recipe.renamed import renamed_to
 
 __all__ = ["load_recipe"]
 
@@ -373,9 +374,18 @@ def _as_name(value: Any) -> str:
 
 
 def _unknown_key(loc: tuple, missing: set[tuple]) -> tuple[str, str | None]:
-    """Message for an unknown key, and the missing required key it likely meant."""
+    """Message for an unknown key, and the missing required key it likely meant.
+
+    A key listed in :data:`~covextract.recipe.renamed.RENAMED_KEYS` is reported as
+    renamed; any other gets the closest allowed key as a did-you-mean.
+    """
     key = loc[-1]
     allowed = _keys_at(loc[:-1])
+    models = [tp.__name__ for tp in _types_at(loc[:-1]) if _is_model(tp)]
+    new = renamed_to(models, str(key), allowed)
+    if new is not None:
+        meant = new if loc[:-1] + (new,) in missing else None
+        return f"key {key!r} was renamed to {new!r}; rename it in your recipe", meant
     close = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6) if allowed else []
     message = f"unknown key {key!r}"
     meant = None
@@ -423,10 +433,14 @@ def _types_at(loc: tuple) -> list[Any]:
     return [t for c in current for t in _flatten(c)]
 
 
+def _is_model(tp: Any) -> bool:
+    return isinstance(tp, type) and issubclass(tp, BaseModel)
+
+
 def _keys_at(loc: tuple) -> list[str]:
     keys: list[str] = []
     for tp in _types_at(loc):
-        if isinstance(tp, type) and issubclass(tp, BaseModel):
+        if _is_model(tp):
             keys += [k for k in tp.model_fields if k not in keys]
     return keys
 
