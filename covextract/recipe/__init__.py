@@ -13,7 +13,6 @@ from covextract.recipe.layers import Layer
 from covextract.recipe.loader import load_recipe
 from covextract.recipe.model import Recipe
 from covextract.recipe.output import Execution, Output
-from covextract.recipe.stat_names import CATEGORICAL_STATS
 from covextract.recipe.study import Boundaries, ColumnBuffer, Points, Study, Units
 
 __all__ = [
@@ -36,3 +35,12 @@ __all__ = [
     "OUTPUT_TABLE_SUFFIXES",
     "STATE_FOLDER_NAME",
 ]
+
+
+def __getattr__(name: str):
+    # CATEGORICAL_STATS is read from the statistics on first use (they bring numpy).
+    if name == "CATEGORICAL_STATS":
+        from covextract.recipe.stat_names import categorical_stats
+
+        return categorical_stats()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

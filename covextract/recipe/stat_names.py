@@ -9,25 +9,39 @@ file only.
 from __future__ import annotations
 
 import re
+from typing import Any
 
 from covextract.recipe.common import hint
-from covextract.stats.categorical import CATEGORICAL_STAT_NAMES
 from covextract.stats.names import POINT_STATS, THRESHOLD_STATS, known_stat_names, parse_stat
 
 __all__ = [
-    "CATEGORICAL_STATS",
     "CHANGE_STATS",
     "THRESHOLD_STATS",
     "PROXY_STATS",
+    "categorical_stats",
     "stat_problem",
 ]
 
-#: Statistics of categorical layers (``share`` gives one column per class or group).
-CATEGORICAL_STATS: tuple[str, ...] = tuple(CATEGORICAL_STAT_NAMES)
 #: Categorical statistics that compare with an earlier layer (``since:``).
 CHANGE_STATS = ("transition", "net_change")
 #: Statistics of population proxies, by the covariate key that asks for them.
 PROXY_STATS = {"reallocate": ("allocated",), "calibrate": ("predicted",)}
+
+
+def categorical_stats() -> tuple[str, ...]:
+    """Statistics of categorical layers (``share`` gives one column per class or group)."""
+    # Imported when first needed: the categorical statistics bring numpy, which
+    # reading a recipe does not need otherwise (``covextract check`` starts faster).
+    from covextract.stats.categorical import CATEGORICAL_STAT_NAMES
+
+    return tuple(CATEGORICAL_STAT_NAMES)
+
+
+def __getattr__(name: str) -> Any:
+    # ``CATEGORICAL_STATS`` stays a module attribute, computed on first use.
+    if name == "CATEGORICAL_STATS":
+        return categorical_stats()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def stat_problem(stat: str, kind: str, point: bool) -> str | None:
@@ -50,12 +64,11 @@ def stat_problem(stat: str, kind: str, point: bool) -> str | None:
         the name the user probably meant; None when the name is valid.
     """
     if kind == "categorical" and not point:
-        if stat in CATEGORICAL_STATS:
+        names = categorical_stats()
+        if stat in names:
             return None
-        message = f"unknown statistic {stat!r} for a categorical layer; valid: " + ", ".join(
-            CATEGORICAL_STATS
-        )
-        candidates: list[str] = list(CATEGORICAL_STATS)
+        message = f"unknown statistic {stat!r} for a categorical layer; valid: " + ", ".join(names)
+        candidates: list[str] = list(names)
         try:
             parse_stat(stat)
             message += f"; {stat} is a statistic of continuous layers"
