@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from covextract.core.options import DEFAULT_PIXEL_RULE, is_point_method
 from covextract.errors import GeometryError
 from covextract.stats.names import parse_stat
 
@@ -43,7 +44,7 @@ def zonal_statistics(
     stats,
     *,
     id_column: str | None = None,
-    pixels: str = "overlap",
+    pixels: str = DEFAULT_PIXEL_RULE,
     area_weighting: str = "auto",
     threshold: float | None = None,
     band: int = 1,
@@ -84,12 +85,12 @@ def zonal_statistics(
     """
     from pyproj import CRS
 
-    from covextract.engine.zonal import POINT_METHODS, zonal
+    from covextract.engine.zonal import zonal
     from covextract.io.rasters import open_layer
 
     if units.crs is None:
         raise GeometryError("the units have no CRS; set one with units.set_crs(...)")
-    point = pixels in POINT_METHODS
+    point = is_point_method(pixels)
     parsed = [parse_stat(s, point=point) for s in stats]
     src = open_layer(raster, band=band, nodata=nodata, scale=scale, offset=offset)
     geoms = (

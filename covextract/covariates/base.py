@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from covextract.core.options import weighting_text
 from covextract.stats.registry import Statistic
 
 __all__ = ["Column", "Outcome", "PlanContext", "ComputeContext", "Covariate"]
@@ -99,28 +100,24 @@ class ComputeContext:
 
 def unit_key(recipe, spec) -> tuple:
     """Which unit set a covariate uses: its own buffer, or the recipe's units."""
+    from covextract.core.options import parse_buffer
+
+    def radius(value) -> tuple:
+        b = parse_buffer(value)
+        return (b.radius_m, b.column)
+
     if getattr(spec, "buffer_m", None) is not None:
-        return ("buffer", *radius_spec(spec.buffer_m))
+        return ("buffer", *radius(spec.buffer_m))
     u = recipe.units
     if u is None:
         return ("own",)
     if u.buffer_m is not None:
-        return ("buffer", *radius_spec(u.buffer_m))
+        return ("buffer", *radius(u.buffer_m))
     if u.boundaries is not None:
         return ("boundaries",)
     if u.at_point is not None:
         return ("point", u.at_point)
     return ("own",)
-
-
-def radius_spec(buffer_m) -> tuple:
-    """``(radius_m, radius_column)`` of a recipe's ``buffer_m`` (a number or ``{column}``)."""
-    if isinstance(buffer_m, int | float):
-        return float(buffer_m), None
-    column = getattr(buffer_m, "column", None)
-    if column is None and isinstance(buffer_m, dict):
-        column = buffer_m.get("column")
-    return None, column
 
 
 class Covariate:
@@ -164,7 +161,7 @@ class Covariate:
         self.unit_key = unit_key(recipe, spec)
         self.point = self.unit_key[0] == "point"
         self.rule = self.unit_key[1] if self.point else spec.pixels
-        self.area_weighting = "off" if spec.area_weighting in (False, "off") else "auto"
+        self.area_weighting = weighting_text(spec.area_weighting)
         self.threshold = spec.threshold
         self.stats: list[Statistic] = []
         self.columns: list[Column] = []

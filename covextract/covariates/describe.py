@@ -6,15 +6,8 @@ The texts of statistics come from the registry; a kind adds its method text
 
 from __future__ import annotations
 
-__all__ = ["codebook_rows", "source_text", "RULE_TEXT"]
+__all__ = ["codebook_rows", "source_text"]
 
-RULE_TEXT = {
-    "overlap": "overlap: each pixel weighted by the exact fraction of its area inside the unit",
-    "center": "center: pixels whose centre lies inside the unit, weight 1",
-    "touched": "touched: every pixel the unit touches, weight 1",
-    "nearest": "nearest: the pixel containing the point",
-    "bilinear": "bilinear: interpolated between the four nearest pixel centres",
-}
 
 
 def _stored_text(src) -> str:
@@ -57,6 +50,7 @@ def source_text(plan, name) -> str:
 
 def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
     """One codebook row per column of ``cov`` (table and panel), then its QA column."""
+    from covextract.core.options import rule_text
     from covextract.engine.zonal import QA_CODES
     from covextract.units.build import QA_CODES as UNIT_QA_CODES
 
@@ -72,7 +66,7 @@ def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
     method = "; ".join(t for t in (cov.method_text(plan), cov.describe_learnt(learnt)) if t)
     base = {
         "layer": cov.layer_name,
-        "pixel_rule": RULE_TEXT.get(cov.rule, cov.rule),
+        "pixel_rule": rule_text(cov.rule),
         "area_weighting": weighting,
         "unit_shape": units.description,
         "nodata_handling": nodata_text(src, layer),

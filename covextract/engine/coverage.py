@@ -38,6 +38,7 @@ import numpy as np
 import shapely
 from affine import Affine
 
+from covextract.core.options import PIXEL_RULE_NAMES, POINT_METHOD_NAMES
 from covextract.engine.kernels import area_weights, center_runs
 from covextract.errors import GeometryError, RasterError, RecipeError, RecipeProblem, TableError
 
@@ -47,8 +48,8 @@ __all__ = ["Coverage", "KERNEL_VERSION", "point_coverage", "polygon_coverage"]
 #: bump it whenever a kernel can return different weights for the same input.
 KERNEL_VERSION = 3
 
-_POLYGON_RULES = ("overlap", "center", "touched")
-_POINT_METHODS = ("nearest", "bilinear")
+_POLYGON_RULES = PIXEL_RULE_NAMES
+_POINT_METHODS = POINT_METHOD_NAMES
 
 #: Interior weights within this distance of 1 are float noise of the
 #: accumulation (0.9999999999999998) and are stored as exactly 1.

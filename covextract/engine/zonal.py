@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from covextract.core.options import PIXEL_RULE_NAMES, POINT_METHOD_NAMES, uses_area_weights
 from covextract.engine.coverage import point_coverage, polygon_coverage
 from covextract.engine.weights import WeightSet, weights_from_coverage
 from covextract.stats.continuous import finalize
@@ -30,8 +31,9 @@ __all__ = [
     "unit_groups",
 ]
 
-PIXEL_RULES = ("overlap", "center", "touched")
-POINT_METHODS = ("nearest", "bilinear")
+#: Pixel rules for polygons and point methods for points (defined in core.options).
+PIXEL_RULES = PIXEL_RULE_NAMES
+POINT_METHODS = POINT_METHOD_NAMES
 
 #: Units whose valid share is below this get the ``low_valid`` QA code.
 LOW_VALID_SHARE = 0.5
@@ -134,14 +136,7 @@ def zonal(
     built = weights is None
     if weights is None:
         weights = build_weights(geoms, grid, rule)
-    if area_weighting == "on":
-        weighting = True
-    elif area_weighting in ("auto", True):
-        weighting = bool(grid.area_varies)
-    elif area_weighting in ("off", False, None):
-        weighting = False
-    else:
-        raise ValueError(f"area_weighting must be 'auto' or 'off', got {area_weighting!r}")
+    weighting = uses_area_weights(area_weighting, grid.area_varies)
     from covextract.engine.stream import stream_pass
 
     cov_on = weights.coverage_totals()

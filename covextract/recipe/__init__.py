@@ -1,25 +1,19 @@
 """The recipe: schema, validation, and YAML loading with line numbers."""
 
-from covextract.recipe.loader import load_recipe
-from covextract.recipe.schema import (
+from covextract.recipe.common import (
     BOUNDARY_SUFFIXES,
-    CATEGORICAL_STATS,
     NAME_PATTERN,
     OUTPUT_TABLE_SUFFIXES,
     RECIPE_VERSION,
     STATE_FOLDER_NAME,
     STUDY_TABLE_SUFFIXES,
-    Boundaries,
-    ColumnBuffer,
-    Covariate,
-    Execution,
-    Layer,
-    Output,
-    Points,
-    Recipe,
-    Study,
-    Units,
 )
+from covextract.recipe.covariates import Covariate
+from covextract.recipe.layers import Layer
+from covextract.recipe.loader import load_recipe
+from covextract.recipe.model import Recipe
+from covextract.recipe.output import Execution, Output
+from covextract.recipe.study import Boundaries, ColumnBuffer, Points, Study, Units
 
 __all__ = [
     "load_recipe",
@@ -41,3 +35,12 @@ __all__ = [
     "OUTPUT_TABLE_SUFFIXES",
     "STATE_FOLDER_NAME",
 ]
+
+
+def __getattr__(name: str):
+    # CATEGORICAL_STATS is read from the statistics on first use (they bring numpy).
+    if name == "CATEGORICAL_STATS":
+        from covextract.recipe.stat_names import categorical_stats
+
+        return categorical_stats()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

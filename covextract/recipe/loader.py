@@ -2,7 +2,7 @@
 
 The YAML is composed into PyYAML nodes, which carry their position in the
 file, and constructed from the same nodes, so each key path of the data has
-a line. Validation errors from :mod:`covextract.recipe.schema` arrive as
+a line. Validation errors from :class:`covextract.recipe.Recipe` arrive as
 pydantic locations (``("covariates", 1, "stats", 0)``); each is mapped to
 the key path a user reads (``covariates[1].stats[0]``) and to the line of
 that key, or of its nearest parent when the key is missing. Pydantic's
@@ -29,7 +29,9 @@ import yaml
 from pydantic import BaseModel, ValidationError
 
 from covextract.errors import InputFileError, RecipeError, RecipeProblem
-from covextract.recipe.schema import NAME_PATTERN, Recipe, _describe, _nearest_line
+from covextract.recipe.common import NAME_PATTERN, describe
+from covextract.recipe.model import Recipe, nearest_line
+from covextract.recipe.renamed import renamed_to
 
 __all__ = ["load_recipe"]
 
@@ -102,9 +104,9 @@ def load_recipe(
         problems.append(
             RecipeProblem(
                 "the recipe must be a mapping of keys (version, study, layers, covariates, "
-                f"output), got {_describe(data)}",
+                f"output), got {describe(data)}",
                 file=file,
-                line=_nearest_line(lines, ()),
+                line=nearest_line(lines, ()),
             )
         )
     if data is None or not isinstance(data, dict):
@@ -289,7 +291,7 @@ def _problems_from(
             message,
             key=_format_key_path(loc, data) or None,
             file=file,
-            line=_nearest_line(lines, loc),
+            line=nearest_line(lines, loc),
         )
         for loc, message in messages
         if loc not in covered
@@ -310,20 +312,18 @@ def _message(err: dict, loc: tuple) -> str:
         number = isinstance(value, (int, float)) and not isinstance(value, bool)
         extra = "; put it in quotes" if number else ""
         what = "a name (text)" if is_key else "text"
-        return f"expected {what}, got {_describe(value)}{extra}"
+        return f"expected {what}, got {describe(value)}{extra}"
     if kind == "int_type":
         what = "a whole number as key" if is_key else "a whole number"
-        return f"expected {what}, got {_describe(value)}"
+        return f"expected {what}, got {describe(value)}"
     if kind == "float_type":
-        return f"expected a number, got {_describe(value)}"
+        return f"expected a number, got {describe(value)}"
     if kind == "list_type":
         one = isinstance(value, (str, int, float))
         extra = f"; write [{value}] for a list of one" if one else ""
-        return f"expected a list, got {_describe(value)}{extra}"
+        return f"expected a list, got {describe(value)}{extra}"
     if kind in ("dict_type", "model_type", "model_attributes_type"):
-        return "expected a block of key: value lines (or {key: value, ...}), got " + _describe(
-            value
-        )
+        return "expected a block of key: value lines (or {key: value, ...}), got " + describe(value)
     if kind == "literal_error":
         choices = _choices_at(loc)
         if not choices:
@@ -332,7 +332,7 @@ def _message(err: dict, loc: tuple) -> str:
         if isinstance(value, str):
             close = difflib.get_close_matches(value, [str(c) for c in choices], n=1)
             hint = f"; did you mean {close[0]!r}?" if close else ""
-        shown = value if isinstance(value, str) else _describe(value)
+        shown = value if isinstance(value, str) else describe(value)
         return f"invalid choice {shown!r}{hint} (valid: {', '.join(map(str, choices))})"
     if kind == "greater_than":
         return f"must be more than {_plain(ctx.get('gt'))}, got {_plain(value)}"
@@ -374,9 +374,18 @@ def _as_name(value: Any) -> str:
 
 
 def _unknown_key(loc: tuple, missing: set[tuple]) -> tuple[str, str | None]:
-    """Message for an unknown key, and the missing required key it likely meant."""
+    """Message for an unknown key, and the missing required key it likely meant.
+
+    A key listed in :data:`~covextract.recipe.renamed.RENAMED_KEYS` is reported as
+    renamed; any other gets the closest allowed key as a did-you-mean.
+    """
     key = loc[-1]
     allowed = _keys_at(loc[:-1])
+    models = [tp.__name__ for tp in _types_at(loc[:-1]) if _is_model(tp)]
+    new = renamed_to(models, str(key), allowed)
+    if new is not None:
+        meant = new if loc[:-1] + (new,) in missing else None
+        return f"key {key!r} was renamed to {new!r}; rename it in your recipe", meant
     close = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.6) if allowed else []
     message = f"unknown key {key!r}"
     meant = None
@@ -424,10 +433,14 @@ def _types_at(loc: tuple) -> list[Any]:
     return [t for c in current for t in _flatten(c)]
 
 
+def _is_model(tp: Any) -> bool:
+    return isinstance(tp, type) and issubclass(tp, BaseModel)
+
+
 def _keys_at(loc: tuple) -> list[str]:
     keys: list[str] = []
     for tp in _types_at(loc):
-        if isinstance(tp, type) and issubclass(tp, BaseModel):
+        if _is_model(tp):
             keys += [k for k in tp.model_fields if k not in keys]
     return keys
 

@@ -19,6 +19,7 @@ import numpy as np
 import shapely
 from pyproj import Geod
 
+from covextract.core.options import MAX_RADIUS_M  # the limit the recipe checks too
 from covextract.errors import GeometryError
 
 __all__ = [
@@ -28,9 +29,6 @@ __all__ = [
     "buffer_input_problems",
 ]
 
-#: Largest buffer radius accepted, in metres. Beyond it a "circle" is a
-#: continental shape for which zonal statistics of a health unit make no sense.
-MAX_RADIUS_M = 1_000_000.0
 
 #: Fewest vertices accepted for a buffer polygon.
 MIN_VERTICES = 8

@@ -27,6 +27,7 @@ import pandas as pd
 import pyproj
 import shapely
 
+from covextract.core.options import POINT_METHOD_NAMES, OptionError, parse_buffer
 from covextract.errors import (
     GeometryError,
     GeometryRepairedWarning,
@@ -67,7 +68,7 @@ QA_CODES: dict[str, str] = {
 SENTINEL_VALUES = (99.0, 999.0, 9999.0, 99999.0, 99.99, 999.9)
 
 #: How a point unit takes the value of a layer.
-AT_POINT_METHODS = ("nearest", "bilinear")
+AT_POINT_METHODS = POINT_METHOD_NAMES
 
 _MAX_EXAMPLES = 5
 _NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
@@ -699,19 +700,12 @@ def _buffers(table, ids, qa, pts: _Points, buffer_m, radius_column, n_vertices) 
             )
     else:
         try:
-            r = float(buffer_m)
-        except (TypeError, ValueError) as exc:
+            r = parse_buffer(buffer_m).radius_m
+        except OptionError as exc:
+            raise GeometryError(f"units.buffer_m is {buffer_m!r}: {exc}.") from None
+        if r is None:
             raise GeometryError(
-                f"units.buffer_m is {buffer_m!r}; give a radius in metres (a number)."
-            ) from exc
-        if not (np.isfinite(r) and r > 0):
-            raise GeometryError(
-                f"units.buffer_m is {buffer_m!r}; give a positive radius in metres."
-            )
-        if r > MAX_RADIUS_M:
-            raise GeometryError(
-                f"units.buffer_m is {r:g} m, above the limit of {MAX_RADIUS_M:g} m. The radius "
-                "is in metres: 2 km is 2000."
+                f"units.buffer_m is {buffer_m!r}; give a column of radii as radius_column."
             )
         radius = np.full(n, r)
 

@@ -422,3 +422,36 @@ def test_mapping_input_problems_have_keys_but_no_file_or_line():
     assert problem.file is None and problem.line is None
     assert "did you mean 'mean'?" in problem.message
     assert str(problem).startswith("covariates[0].stats[1]: unknown statistic 'meen'")
+
+
+# ---- buffer_m: one check (covextract.core.options.parse_buffer) for every caller
+
+
+def test_buffer_above_the_limit_is_a_recipe_problem(tmp_path):
+    problem = only(
+        problems(tmp_path, variant("buffer_m: 2000", "buffer_m: 2000000")), "units.buffer_m"
+    )
+    assert problem.line == 7
+    assert problem.message == (
+        "a buffer radius of 2e+06 m is above the limit of 1e+06 m; the radius is in "
+        "metres: 2 km is 2000"
+    )
+
+
+def test_buffer_yes_no_value_on_a_covariate(tmp_path):
+    text = variant("    stats: [mean, std]\n", "    stats: [mean, std]\n    buffer_m: yes\n")
+    problem = only(problems(tmp_path, text), "covariates[0].buffer_m")
+    assert problem.line == 20
+    assert problem.message.startswith(
+        "expected a buffer radius in metres (a number > 0) or {column: <column of radii in "
+        "metres>}, got true (a yes/no value"
+    )
+
+
+def test_buffer_column_with_a_misspelt_key(tmp_path):
+    problem = only(
+        problems(tmp_path, variant("buffer_m: 2000", "buffer_m: {colum: radius_m}")),
+        "units.buffer_m.colum",
+    )
+    assert problem.line == 7
+    assert "did you mean 'column' (required here)?" in problem.message

@@ -552,3 +552,18 @@ def test_to_crs_outside_projection_domain_becomes_none():
     moved = units.to_crs(ortho)
     assert moved[0] is None
     assert (moved[1].x, moved[1].y) == direct.transform(10.0, 5.0)
+
+
+@pytest.mark.parametrize(
+    "value, message",
+    [
+        ("2000", "units.buffer_m is '2000': expected a buffer radius in metres"),
+        (True, "units.buffer_m is True: expected a buffer radius in metres"),
+        ({"column": "radius_m"}, "give a column of radii as radius_column"),
+    ],
+)
+def test_buffer_m_is_checked_like_the_recipe(villages, value, message):
+    # Text and yes/no values were read as numbers before the check was shared.
+    with pytest.raises(GeometryError) as info:
+        build_units(villages, id_column="village_id", points=PTS, buffer_m=value)
+    assert message in str(info.value)
