@@ -90,15 +90,18 @@ def test_categorical_recipe_columns_and_values(scene):
     assert float(t.iloc[1]["cover_2020_share_other"]) > 0
     # change: net change of built equals forest -> built (nothing else became built)
     assert_allclose(
-        float(a["change_net_change_built"]), float(a["change_transition_forest_to_built"])
+        float(a["change_net_built"]), float(a["change_forest_to_built"])
     )
     assert_allclose(
-        float(a["change_transition_any_to_built"]), float(a["change_transition_forest_to_built"])
+        float(a["change_any_to_built"]), float(a["change_forest_to_built"])
     )
-    assert float(a["change_net_change_forest"]) < 0
+    assert float(a["change_net_forest"]) < 0
     rows = {r["column"]: r for r in result.codebook}
-    assert "Class table: 1 = cropland" in rows["cover_2020_share_forest"]["definition"]
-    assert rows["change_transition_forest_to_built"]["statistic"] == "transition"
+    assert rows["cover_2020_share_forest"]["definition"] == (
+        "share of the unit's valid area in class forest (nodata excluded)"
+    )
+    assert "class table: 1 = cropland" in rows["cover_2020_share_forest"]["method"]
+    assert rows["change_forest_to_built"]["statistic"] == "transition"
 
 
 def _run(folder, recipe):

@@ -70,7 +70,9 @@ def test_reallocated_population_of_districts_equals_their_totals(demo_dir):
     )
     assert_allclose(result.table["pop_alloc_allocated"].to_numpy(float), expected, rtol=1e-9)
     row = {r["column"]: r for r in result.codebook}["pop_alloc_allocated"]
-    assert "Tobler 1979" in row["definition"] and "proxy" in row["unit_of_measure"]
+    assert "Tobler 1979" in row["definition"] and "a proxy, not a count" in row["definition"]
+    # the totals' unit: the recipe gives none, so the codebook names the column it comes from
+    assert row["unit_of_measure"] == "as column 'population' of the totals file"
 
 
 def test_village_buffers_get_a_share_of_their_district(demo_dir):

@@ -51,10 +51,10 @@ DEMO_NEW = (
         "cover_2021_dominant",
         "cover_2021_shannon",
         "cover_2021_qa",
-        "cover_change_transition_forest_to_cropland",
-        "cover_change_transition_any_to_built",
+        "cover_change_forest_to_cropland",
+        "cover_change_any_to_built",
     ]
-    + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+    + [f"cover_change_net_{c}" for c in CLASSES + ("tree_cover",)]
     + ["cover_change_qa"]
     + [
         "veg_mean",
@@ -120,29 +120,29 @@ EXPECTED = {
             "cover_2021_shannon",
             "cover_2021_valid_share",
             "cover_2021_qa",
-            "cover_change_transition_forest_to_cropland",
-            "cover_change_transition_forest_to_built",
-            "cover_change_transition_any_to_built",
+            "cover_change_forest_to_cropland",
+            "cover_change_forest_to_built",
+            "cover_change_any_to_built",
         ]
-        + [f"cover_change_net_change_{c}" for c in CLASSES + ("tree_cover",)]
+        + [f"cover_change_net_{c}" for c in CLASSES + ("tree_cover",)]
         + [
             "cover_change_qa",
-            "cover_change_5km_transition_forest_to_cropland",
-            "cover_change_5km_transition_any_to_built",
+            "cover_5km_forest_to_cropland",
+            "cover_5km_any_to_built",
         ]
-        + [f"cover_change_5km_net_change_{c}" for c in CLASSES + ("tree_cover",)]
-        + ["cover_change_5km_qa"],
+        + [f"cover_5km_net_{c}" for c in CLASSES + ("tree_cover",)]
+        + ["cover_5km_qa"],
     ),
     "rainfall_before_visit.yaml": (
         "villages.csv",
         VILLAGE_COLUMNS
         + [
-            "rain_mean_sum_3m_lag1",
-            "rain_qa",
-            "wet_months_mean_count_above_6m_lag1",
+            "rain_mean_sum3m_lag1",
+            "rain_sum3m_lag1_qa",
+            "wet_months_mean",
             "wet_months_qa",
-            "ndvi_m_mean_mean_2m_lag1",
-            "ndvi_m_qa",
+            "ndvi_m_mean_mean2m_lag1",
+            "ndvi_m_mean2m_lag1_qa",
         ],
     ),
     "village_boundaries.yaml": (

@@ -76,6 +76,7 @@ def test_window_before_each_visit_equals_a_brute_force_sum(folder):
                 "stats": ["mean"],
                 "before": {"months": 6, "lag_months": 1, "combine": "count_above", "threshold": 90},
             },
+            {"layer": "rain", "stats": ["mean"], "periods": "2019-01.."},
         ],
         panel="out/panel",
     )
@@ -83,29 +84,33 @@ def test_window_before_each_visit_equals_a_brute_force_sum(folder):
     t = result.table
     panel = result.panel
     assert result.summary["weights_built"] == 1  # one grid: 24 periods, one weight build
-    monthly = panel[panel["column"] == "rain_mean"].set_index(["unit_id", "period_start"])["value"]
+    monthly = panel[panel["column"] == "rain_mean"].set_index(["site", "period_start"])["value"]
     # Brute force with pandas: visit 17 May 2020, N=3, L=1 -> Feb, Mar, Apr 2020
     expected = sum(monthly[("A", pd.Timestamp(f"2020-{m:02d}-01"))] for m in (2, 3, 4))
-    assert_allclose(t["rain_mean_sum_3m_lag1"][0], expected, rtol=1e-12)
+    assert_allclose(t["rain_mean_sum3m_lag1"][0], expected, rtol=1e-12)
     six = [
         monthly[("A", pd.Timestamp(f"{y}-{m:02d}-01"))]
         for y, m in [(2019, 11), (2019, 12), (2020, 1), (2020, 2), (2020, 3), (2020, 4)]
     ]
-    assert t["wet_mean_count_above_6m_lag1"][0] == sum(v > 90 for v in six)
+    assert t["wet_mean"][0] == sum(v > 90 for v in six)
     # B: the window (Nov 2018 - Jan 2019) reaches before the series; C has no date
-    assert np.isnan(t["rain_mean_sum_3m_lag1"][1]) and "window_outside_series" in t["rain_qa"][1]
-    assert np.isnan(t["rain_mean_sum_3m_lag1"][2]) and "no_date" in t["rain_qa"][2]
+    assert np.isnan(t["rain_mean_sum3m_lag1"][1]) and "window_outside_series" in t["rain_sum3m_lag1_qa"][1]
+    assert np.isnan(t["rain_mean_sum3m_lag1"][2]) and "no_date" in t["rain_sum3m_lag1_qa"][2]
     # the panel: one Parquet file per period, keyed by unit, column and period
     files = sorted((folder / "out" / "panel").glob("*.parquet"))
     assert [f.stem for f in files] == [f"{m.year}-{m.month:02d}-01" for m in MONTHS]
     one = pd.read_parquet(files[0])
-    assert list(one.columns) == ["unit_id", "column", "period_start", "period_end", "value"]
-    assert set(one["column"]) == {"rain_mean", "wet_mean"}
+    # keyed by the study's own id column, each value once under its codebook name, with QA
+    assert list(one.columns) == ["site", "column", "period_start", "period_end", "value", "qa"]
+    assert set(one["column"]) == {"rain_mean"}
     rows = {r["column"]: r for r in result.codebook}
     assert (
-        "3 calendar months ending 1 month(s) before the month of visit"
-        in rows["rain_mean_sum_3m_lag1"]["nodata_handling"]
+        "the 3 calendar month(s) ending 1 month(s) before the month of the record's date (visit)"
+        in rows["rain_mean_sum3m_lag1"]["definition"]
     )
+    assert rows["rain_mean_sum3m_lag1"]["unit_of_measure"] == "mm"
+    assert rows["wet_mean"]["unit_of_measure"] == "months"
+    assert rows["rain_mean"]["output"] == "long panel"
 
 
 def test_lag_zero_warns_and_flags_after_visit(folder):
@@ -117,7 +122,7 @@ def test_lag_zero_warns_and_flags_after_visit(folder):
             ),
             write=False,
         )
-    assert "after_visit" in result.table["rain_qa"][0]
+    assert "after_visit" in result.table["rain_sum2m_lag0_qa"][0]
 
 
 def test_periods_need_a_panel_folder_and_mixed_dates_are_refused(folder):
@@ -173,8 +178,8 @@ def test_netcdf_cube_gives_the_geotiff_series_values(folder):
     recipe.layers["rain"].variable = "precip"
     cube = run(recipe, write=False).table
     assert_allclose(
-        cube["rain_mean_sum_3m_lag1"].to_numpy(float),
-        tif["rain_mean_sum_3m_lag1"].to_numpy(float),
+        cube["rain_mean_sum3m_lag1"].to_numpy(float),
+        tif["rain_mean_sum3m_lag1"].to_numpy(float),
         rtol=1e-9,
         equal_nan=True,
     )
@@ -228,13 +233,14 @@ def test_trend_equals_scipy_on_the_unit_series(tmp_path):
         base_dir=tmp_path,
     )
     panel = run(series_recipe, write=False).panel
-    a = panel[panel["unit_id"] == "A"].sort_values("period_start")["value"].to_numpy()
+    a = panel[panel["site"] == "A"].sort_values("period_start")["value"].to_numpy()
     x = np.arange(2001, 2016)
     assert_allclose(result.table["v_mean_trend_ols"][0], stats.linregress(x, a).slope, rtol=1e-10)
     assert_allclose(result.table["v_mean_trend_sen"][0], stats.theilslopes(a, x)[0], rtol=1e-10)
     assert result.table["v_mean_trend_p"][0] < 0.01
     rows = {r["column"]: r for r in result.codebook}
-    assert "Theil-Sen" in rows["v_mean_trend_sen"]["nodata_handling"]
+    assert "Theil-Sen" in rows["v_mean_trend_sen"]["definition"]
+    assert rows["v_mean_trend_sen"]["unit_of_measure"] == "layer unit per year"
 
 
 def test_anomaly_of_a_constant_series_is_zero_and_spi_has_categories(folder):
@@ -255,7 +261,7 @@ def test_anomaly_of_a_constant_series_is_zero_and_spi_has_categories(folder):
         with rasterio.open(folder / "rain" / f"rain_{month.year}{month.month:02d}.tif", "r+") as ds:
             ds.write(np.full((30, 30), 50.0, np.float32), 1)
     result = run(recipe, write=False)
-    assert_allclose(result.table["ra_mean_anom_mean_1m_lag1"][0], 0.0, atol=1e-12)
+    assert_allclose(result.table["ra_mean"][0], 0.0, atol=1e-12)
 
 
 def test_spi_before_visit_matches_the_library(tmp_path):
@@ -332,8 +338,8 @@ def test_spi_before_visit_matches_the_library(tmp_path):
         warnings.simplefilter("ignore", ShortBaselineWarning)
         ref = spi(long, months=1, baseline=(2000, 2011))
     may = ref[pd.to_datetime(ref["start"]) == pd.Timestamp("2011-05-01")]["value"].iloc[0]
-    assert_allclose(result.table["rain_mean_spi1_mean_1m_lag1"][0], may, rtol=1e-10)
-    assert result.table["rain_mean_spi1_mean_1m_lag1_category"][0] in {
+    assert_allclose(result.table["rain_mean_spi1_mean1m_lag1"][0], may, rtol=1e-10)
+    assert result.table["rain_mean_spi1_mean1m_lag1_cat"][0] in {
         "extremely wet",
         "very wet",
         "moderately wet",

@@ -42,7 +42,7 @@ def demo_command(
                 f"{folder / 'spi_rain'}; running recipe_spi.yaml"
             )
             spi_result = run(folder / "recipe_spi.yaml", write=True, progress=None)
-            cats = spi_result.table["spi3_mean_category"].value_counts()
+            cats = spi_result.table["spi3_mean_cat"].value_counts()
             typer.echo(
                 "SPI-3 of the month before each visit, villages per WMO category: "
                 + ", ".join(f"{k} {v}" for k, v in cats.items())

@@ -83,8 +83,8 @@ def assign_names(covariates, existing, problem) -> None:
             if error is None and col in owner:
                 other = owner[col]
                 error = ColumnCollisionError(
-                    f"covariates {other.index + 1} and {cov.index + 1} (layer "
-                    f"{cov.layer_name!r}) would both write column {col!r}. Add a distinct "
+                    f"covariates {other.index + 1} and {cov.index + 1} would both write column "
+                    f"{col!r} (layer {cov.layer_name!r}). Add a distinct "
                     f"name: to covariate {cov.index + 1} (for example name: "
                     f"{cov.layer_name}_{cov.index + 1})."
                 )
@@ -103,13 +103,14 @@ def _name_problem(cov, col: str, names) -> str | None:
             "underscores, starting with a letter); rename the class, layer or name: it comes from"
         )
     if len(col) > MAX_LENGTH:
-        longest = max(len(n) for n in names)
-        room = MAX_LENGTH - (longest - len(cov.prefix))
-        how = (
-            f"shorten its name: to at most {room} characters"
-            if cov.named and room > 0
-            else f"give it a name: of at most {max(room, 1)} characters"
-        )
+        if cov.named:
+            longest = max(len(n) for n in names)
+            how = f"shorten its name: to at most {MAX_LENGTH - (longest - len(cov.prefix))} characters"
+        else:
+            how = (
+                "give it a short name: (named columns are <name>_<statistic>, see the naming "
+                "table in the README)"
+            )
         return (
             f"{cov.label()}: column {col!r} is {len(col)} characters long; statistics packages "
             f"accept at most {MAX_LENGTH}. To fix it, {how}."

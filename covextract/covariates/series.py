@@ -262,12 +262,6 @@ class PeriodsCovariate(SeriesCovariate):
             self.columns.append(col)
         return True
 
-    def all_periods(self) -> list:
-        # anomalies need the baseline years, which may lie outside the selection
-        if self.anomaly is not None:
-            return list(self.series.periods)
-        return list(self.periods)
-
     def assemble(self, plan, periods, vals, qa_pp) -> Outcome:
         units = plan.unit_sets[self.unit_key]
         n = len(units)

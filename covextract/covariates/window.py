@@ -34,7 +34,7 @@ class WindowCovariate(SeriesCovariate):
     """One column per statistic: its per-period values combined over each record's window.
 
     Unnamed columns are ``<layer>_<stat>[_<anomaly tag>]_<window>`` (``rain_mean_sum3m_lag1``);
-    with ``name:`` they are ``<name>_<stat>``. SPI windows add ``<column>_category``.
+    with ``name:`` they are ``<name>_<stat>``. SPI windows add ``<column>_cat`` (the WMO class).
     """
 
     kind = "window"
@@ -93,7 +93,7 @@ class WindowCovariate(SeriesCovariate):
             self.columns.append(col)
             if self.tag and self.tag.startswith("spi"):
                 cat = registry.get("category", "anomaly")
-                self.columns.append(self.column(f"{name}_category", cat, ""))
+                self.columns.append(self.column(f"{name}_cat", cat, ""))
         return True
 
     def _window_text(self) -> str:
@@ -136,7 +136,7 @@ class WindowCovariate(SeriesCovariate):
             if self.tag and self.tag.startswith("spi"):
                 from covextract.derive.spi import spi_category
 
-                values[f"{col.name}_category"] = spi_category(values[col.name])
+                values[f"{col.name}_cat"] = spi_category(values[col.name])
             for i, codes in enumerate(out["qa"]):
                 qa[i] = list(dict.fromkeys(qa[i] + list(codes)))
         valid = np.isfinite(values[value_cols[0].name]).astype(float)

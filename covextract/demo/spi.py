@@ -42,7 +42,7 @@ covariates:
     stats: [mean]                     # monthly rainfall over the buffer
     # the 3-month SPI (McKee et al. 1993; WMO-No. 1090) against 1991-2020 ...
     anomaly: {baseline: 1991..2020, kind: spi, months: 3}
-    # ... of the month before the visit month -> spi3_mean and spi3_mean_category
+    # ... of the month before the visit month -> spi3_mean and spi3_mean_cat
     before: {months: 1, lag_months: 1, combine: mean}
 output:
   table: out/villages_spi.csv

@@ -463,7 +463,7 @@ for _stat in (
         "count_above",
         "window",
         "number of {periods} in {window} whose per-period {inner} is > {threshold}",
-        _fixed("periods"),
+        lambda noun: noun or "periods",
     ),
     # ----------------------------------------------------------------- trend
     Statistic(

@@ -237,8 +237,8 @@ def test_demo_lays_out_runs_and_prints_the_outputs(tmp_path):
     assert "villages per WMO category:" in result.stdout
     spi = pd.read_csv(folder / "out" / "villages_spi.csv", dtype=str, keep_default_na=False)
     assert len(spi) == 40
-    assert spi["spi3_mean_category"].ne("").all()
-    assert spi["spi_qa"].eq("").all()
+    assert spi["spi3_mean_cat"].ne("").all()
+    assert spi["spi3_qa"].eq("").all()
 
 
 def test_demo_refuses_a_foreign_non_empty_folder(tmp_path):

@@ -237,7 +237,7 @@ def test_foreign_database_and_other_version_are_reported(tmp_path):
     conn.execute("CREATE TABLE notes (x TEXT)")
     conn.commit()
     conn.close()
-    with pytest.raises(LedgerVersionError, match="schema version 0"):
+    with pytest.raises(LedgerVersionError, match="ledger schema 0"):
         Ledger(foreign)
 
     newer = tmp_path / "newer"
@@ -246,7 +246,7 @@ def test_foreign_database_and_other_version_are_reported(tmp_path):
     conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
     conn.commit()
     conn.close()
-    with pytest.raises(LedgerVersionError, match=f"schema version {SCHEMA_VERSION + 1}"):
+    with pytest.raises(LedgerVersionError, match=f"ledger schema {SCHEMA_VERSION + 1}"):
         Ledger(newer)
 
     wrong_columns = tmp_path / "wrong"

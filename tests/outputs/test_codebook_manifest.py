@@ -168,6 +168,11 @@ def test_markdown_codebook_has_cautions_and_one_section_per_column(demo_run):
     assert "association, not cause" in text
     headings = [line[5:-1] for line in text.splitlines() if line.startswith("### `")]
     assert headings == result.columns
+    # a methods paragraph to adapt, with the published methods it used
+    assert "## Methods (a paragraph to adapt)" in text
+    assert "Karney CFF (2013)" in text and "Tobler WR (1979)" in text
+    # per column: missing values and min / median / max from this run
+    assert "- **values in this run**: 0 missing of 40; min " in text
     section = text.split("### `ndvi_mean`")[1].split("### ")[0]
     assert "- **unit of measure**: NDVI, unitless" in section
     assert "- **unit shape**: geodesic buffer of 2000 m around each point" in section
@@ -177,8 +182,10 @@ def test_markdown_codebook_has_cautions_and_one_section_per_column(demo_run):
 # -------------------------------------------------------------------- manifest
 def test_manifest_recipe_fingerprint(demo_run, manifest):
     folder, _ = demo_run
-    assert manifest["manifest_version"] == 1
-    assert manifest["recipe"]["file"] == str(folder / "recipe.yaml")
+    assert manifest["manifest_version"] == 2
+    # relative to the recipe's folder: a shared manifest reveals no local folder names
+    assert manifest["recipe"]["file"] == "recipe.yaml"
+    assert str(folder) not in (folder / "out" / "villages_covariates_manifest.json").read_text()
     assert manifest["recipe"]["fingerprint"] == load_recipe(folder / "recipe.yaml").fingerprint
     assert len(manifest["recipe"]["fingerprint"]) == 64
 
@@ -216,7 +223,8 @@ def test_manifest_fingerprints_every_input(demo_run, manifest):
     }
     for role, name in files.items():
         path = folder / name
-        assert roles[role]["path"] == str(path)
+        assert roles[role]["path"] == name
+        assert roles[role]["outside_recipe_folder"] is False
         # Reference: hashlib's SHA-256 of the file's bytes.
         assert roles[role]["sha256"] == sha256(path)
         assert roles[role]["bytes"] == path.stat().st_size
@@ -260,15 +268,16 @@ def test_manifest_versions_and_layer_crs(demo_run, manifest):
 
 def test_manifest_is_written_last_and_matches_the_outputs(demo_run, manifest):
     _, result = demo_run
+    folder, _ = demo_run
     recorded = {item["path"]: item["sha256"] for item in manifest["outputs"]}
     written = [result.outputs[k] for k in ("table", "codebook", "codebook_md")]
-    assert recorded == {str(p): sha256(p) for p in written}
+    assert recorded == {p.relative_to(folder).as_posix(): sha256(p) for p in written}
     manifest_time = result.outputs["manifest"].stat().st_mtime_ns
     assert all(p.stat().st_mtime_ns <= manifest_time for p in written)
     started = datetime.fromisoformat(manifest["run"]["started"])
     finished = datetime.fromisoformat(manifest["run"]["finished"])
     assert started <= finished
-    assert verify_manifest(result.outputs["manifest"]) == []
+    assert verify_manifest(result.outputs["manifest"], base_dir=folder) == []
 
 
 def test_verify_manifest_reports_a_changed_output(demo_dir):
@@ -276,9 +285,9 @@ def test_verify_manifest_reports_a_changed_output(demo_dir):
     md = result.outputs["codebook_md"]
     md.write_text(md.read_text(encoding="utf-8") + "edited by hand\n", encoding="utf-8")
     result.outputs["codebook"].unlink()
-    assert verify_manifest(result.outputs["manifest"]) == [
-        f"{result.outputs['codebook']} is missing",
-        f"{md} has changed since the run",
+    assert verify_manifest(result.outputs["manifest"], base_dir=demo_dir) == [
+        "out/codebook.csv is missing",
+        "out/codebook.md has changed since the run",
     ]
 
 

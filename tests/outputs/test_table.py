@@ -242,4 +242,4 @@ def test_an_interrupted_write_leaves_the_previous_outputs_intact(demo_dir, monke
     assert first.outputs["table"].read_bytes() == table_bytes
     assert first.outputs["manifest"].read_bytes() == manifest_bytes
     assert temp_leftovers(demo_dir) == []
-    assert verify_manifest(first.outputs["manifest"]) == []
+    assert verify_manifest(first.outputs["manifest"], base_dir=demo_dir) == []

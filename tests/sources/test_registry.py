@@ -19,7 +19,7 @@ from numpy.testing import assert_array_equal
 from covextract.errors import RasterError, RecipeError
 from covextract.io.rasters import RasterSource
 from covextract.io.series import SeriesIndex
-from covextract.recipe.schema import Layer
+from covextract.recipe.layers import Layer
 from covextract.sources.bandmath import BandMathSource, ClippedSource
 from covextract.sources.base import LayerSource, SourceKind, shown_path
 from covextract.sources.registry import KINDS, kind_of, open_source
