@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["area_weights", "block_shift", "center_runs", "group_by_block", "reduce_runs_block"]
+__all__ = ["area_weights", "center_runs", "group_by_block", "reduce_runs_block", "unit_shift"]
 
 
 @njit(nogil=True, cache=True)
@@ -38,34 +38,28 @@ def _row_offsets(rows, m, per):
 
 
 @njit(nogil=True, cache=True)
-def block_shift(values, valid):  # pragma: no cover - compiled
-    """A valid value of the block near the mean of its valid values (0 without any).
+def unit_shift(values, valid, eu, ep, i, ru, rs, rl, j, u):  # pragma: no cover - compiled
+    """The unit's first valid value in the block: its entries first, then its runs.
 
-    Deviations are summed around it so that Σw·(v−s)² keeps its digits for
-    values like 300 K ± 0.01; taking an actual value of the block (not the
-    mean itself) makes a constant field give deviations, and spreads, of
-    exactly 0. A regular sample of the block is enough to find it: every 61st
-    pixel, or every pixel when none of those is valid.
+    Deviations of the unit's values are summed around it. Taken per unit (not
+    per block), it lies within the unit's own values, so Σw·(v−s)² keeps its
+    digits however far the block's other units are (0.3 next to 3e5), and a
+    unit whose valid values are all equal gets deviations, sums of
+    deviations, and spread, of exactly 0. 0.0 when the unit has no valid pixel.
+    ``i`` and ``j`` are the unit's first entry and first run.
     """
-    n = values.size
-    for step in (61, 1):
-        total = 0.0
-        k = 0
-        for p in range(0, n, step):
+    ne = eu.size
+    nr = ru.size
+    while i < ne and eu[i] == u:
+        p = ep[i]
+        if valid[p]:
+            return values[p]
+        i += 1
+    while j < nr and ru[j] == u:
+        for p in range(rs[j], rs[j] + rl[j]):
             if valid[p]:
-                total += values[p]
-                k += 1
-        if k:
-            mean = total / k
-            best = 0.0
-            gap = np.inf
-            for p in range(0, n, step):
-                if valid[p]:
-                    g = abs(values[p] - mean)
-                    if g < gap:
-                        gap = g
-                        best = values[p]
-            return best
+                return values[p]
+        j += 1
     return 0.0
 
 
@@ -84,7 +78,6 @@ def reduce_runs_block(
     pixel_areas,
     per_pixel_area,
     weighting,
-    shift,
     thresholds,
 ):  # pragma: no cover - compiled
     """Per-unit sums of one block from its entries and runs (both sorted by unit).
@@ -92,10 +85,11 @@ def reduce_runs_block(
     Entries ``(eu, ep, ec)`` with true areas ``ea``; runs ``(ru, rs, rl)`` of
     weight 1 with one area per run (``run_areas``) or, when
     ``per_pixel_area``, the area of every pixel of the block (``pixel_areas``).
-    Deviations are summed around ``shift`` (a valid value of the block) and
-    turned into the mean (kept within the unit's extremes) and Σw·(v − mean)²
-    per unit at the end. Each unit's entries are
-    summed first, in their order, then its runs, each run on its own first.
+    Each unit's deviations are summed around its own first valid value in
+    the block (:func:`unit_shift`) and turned into the mean (``shift +
+    Σw·d/Σw``, kept within the unit's extremes) and Σw·(v − mean)² per unit
+    at the end. Each unit's entries are summed first, in their order, then
+    its runs, each run on its own first.
 
     Returns ``units`` (sorted) and per unit ``(w_all, area_all, count, w,
     mean, m2, csum, dens, vmin, vmax, above_area, above_w)``; the last two
@@ -116,6 +110,7 @@ def reduce_runs_block(
     dens = np.zeros(cap)
     vmin = np.full(cap, np.inf)
     vmax = np.full(cap, -np.inf)
+    shifts = np.zeros(cap)
     above_area = np.zeros((nt, cap))
     above_w = np.zeros((nt, cap))
     hits = np.zeros(nt)
@@ -129,6 +124,8 @@ def reduce_runs_block(
         else:
             u = ru[j]
         units[k] = u
+        shift = unit_shift(values, valid, eu, ep, i, ru, rs, rl, j, u)
+        shifts[k] = shift
         while i < ne and eu[i] == u:
             c = ec[i]
             a = ea[i]
@@ -240,10 +237,11 @@ def reduce_runs_block(
     for q in range(k):
         if wsum[q] > 0:
             rel = s1[q] / wsum[q]
-            # a mean lies within the unit's extremes: keeping it there makes a
-            # constant field's mean exactly its value and a non-negative
-            # field's mean non-negative, where shift + rel could round past them
-            mean[q] = min(max(shift + rel, vmin[q]), vmax[q])
+            # a unit of equal values has s1 = s2 = 0 exactly (its shift is
+            # one of them), so its mean is that value and m2 is 0; otherwise
+            # shift + rel could round past the unit's extremes (a mean of
+            # non-negative values below 0): keep it within them
+            mean[q] = min(max(shifts[q] + rel, vmin[q]), vmax[q])
             m2[q] = max(s2[q] - s1[q] * rel, 0.0)
         else:
             mean[q] = np.nan

@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from covextract.engine.kernels import block_shift, reduce_runs_block
+from covextract.engine.kernels import reduce_runs_block
 
 __all__ = ["BlockPartial", "Accumulator", "reduce_block", "reduce_block_runs"]
 
@@ -34,7 +34,7 @@ class BlockPartial:
     area_all: np.ndarray  # Σ c·a/1e6 over every entry, km²
     count: np.ndarray  # valid entries
     w: np.ndarray  # Σ w over valid entries
-    mean: np.ndarray  # Σ w·v / Σ w (NaN where w == 0)
+    mean: np.ndarray  # Σ w·v / Σ w (NaN where w == 0), within [vmin, vmax]
     m2: np.ndarray  # Σ w·(v − mean)²
     csum: np.ndarray  # Σ c·v
     dens: np.ndarray  # Σ c·v·a/1e6
@@ -107,20 +107,28 @@ def reduce_block(
     count = np.bincount(lv, minlength=k).astype(np.int64)
     wsum = np.bincount(lv, weights=wv, minlength=k)
     wbase = wsum if factor is None else np.bincount(lv, weights=w_base[ok], minlength=k)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.bincount(lv, weights=wv * v, minlength=k) / wsum
-    dev = v - mean[lv]
-    m2 = np.bincount(lv, weights=wv * dev * dev, minlength=k)
-    csum = np.bincount(lv, weights=cv * v, minlength=k)
-    dens = np.bincount(lv, weights=cv * v * a[ok] / 1e6, minlength=k)
 
     vmin = np.full(k, np.nan)
     vmax = np.full(k, np.nan)
+    shift = np.zeros(k)
     if lv.size:
         vs = np.flatnonzero(np.r_[True, lv[1:] != lv[:-1]])
         present = lv[vs]
         vmin[present] = np.minimum.reduceat(v, vs)
         vmax[present] = np.maximum.reduceat(v, vs)
+        shift[present] = v[vs]
+    # the mean as the unit's first valid value plus the weighted mean of the
+    # deviations from it, not Σw·v / Σw (which may round off a value that all
+    # pixels share), kept within the unit's extremes as in the run reduction;
+    # a unit of equal values gets its value and m2 = 0 exactly
+    d = v - shift[lv]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = np.bincount(lv, weights=wv * d, minlength=k) / wsum
+    mean = np.minimum(np.maximum(shift + rel, vmin), vmax)
+    dev = v - mean[lv]
+    m2 = np.bincount(lv, weights=wv * dev * dev, minlength=k)
+    csum = np.bincount(lv, weights=cv * v, minlength=k)
+    dens = np.bincount(lv, weights=cv * v * a[ok] / 1e6, minlength=k)
 
     above_area, above_w = {}, {}
     for thr in thresholds:
@@ -169,10 +177,12 @@ def reduce_block_runs(
     loop (:func:`covextract.engine.kernels.reduce_runs_block`): per unit its
     entries pixel by pixel, then each run over its pixels, so the cost is
     per covered pixel, with no temporaries of the block's size and no
-    expansion of the runs. Squared deviations are accumulated around one
-    valid value of the block (:func:`covextract.engine.kernels.block_shift`)
-    and turned into Σw·(v − mean)² per unit, equal to the per-pixel result
-    to float rounding (about 1e-13 relative on smooth data).
+    expansion of the runs. Each unit's squared deviations are accumulated
+    around its own first valid value in the block
+    (:func:`covextract.engine.kernels.unit_shift`) and turned into
+    Σw·(v − mean)², equal to the per-pixel result to float rounding (about
+    1e-13 relative on smooth data), and exactly 0 for a unit whose valid
+    values are all equal.
 
     Parameters
     ----------
@@ -234,7 +244,6 @@ def reduce_block_runs(
         np.asarray(pixel_areas, dtype=np.float64).ravel() if per_pixel_area else empty,
         per_pixel_area,
         bool(weighting),
-        block_shift(values, valid),
         thr,
     )
     above_area = {t: above_a[j] for j, t in enumerate(thresholds)}
@@ -317,13 +326,17 @@ class Accumulator:
         wb = p.w[has]
         tot = wa + wb
         delta = p.mean[has] - self.mean[uh]
-        self.mean[uh] += delta * (wb / tot)
         self.m2[uh] += p.m2[has] + delta * delta * (wa * wb / tot)
         self.w[uh] = tot
         present = p.count > 0
         up = u[present]
         self.vmin[up] = np.minimum(self.vmin[up], p.vmin[present])
         self.vmax[up] = np.maximum(self.vmax[up], p.vmax[present])
+        # equal block means give delta = 0 (mean and m2 unchanged, a unit of
+        # equal values keeps m2 = 0); the mean stays within the merged
+        # extremes, which the update could otherwise pass by a rounding
+        mean = self.mean[uh] + delta * (wb / tot)
+        self.mean[uh] = np.minimum(np.maximum(mean, self.vmin[uh]), self.vmax[uh])
         for t in self.thresholds:
             self.above_area[t][u] += p.above_area[t]
             self.above_w[t][u] += p.above_w[t]
