@@ -92,8 +92,11 @@ def reduce_runs_block(
     its runs, each run on its own first.
 
     Returns ``units`` (sorted) and per unit ``(w_all, area_all, count, w,
-    mean, m2, csum, dens, vmin, vmax, above_area, above_w)``; the last two
-    have one row per threshold.
+    mean, m2, csum, dens, vmin, vmax, above_area, above_w, shift, rel)``;
+    ``above_area`` and ``above_w`` have one row per threshold, ``shift`` is
+    the unit's value the deviations were taken around and ``rel`` = Σw·d/Σw
+    (NaN where Σw = 0), so that ``mean`` ≈ ``shift + rel`` with ``rel`` not
+    rounded to the magnitude of the values (for the merge across blocks).
     """
     ne = eu.size
     nr = ru.size
@@ -234,9 +237,11 @@ def reduce_runs_block(
         k += 1
     mean = np.empty(k)
     m2 = np.zeros(k)
+    rels = np.full(k, np.nan)
     for q in range(k):
         if wsum[q] > 0:
             rel = s1[q] / wsum[q]
+            rels[q] = rel
             # a unit of equal values has s1 = s2 = 0 exactly (its shift is
             # one of them), so its mean is that value and m2 is 0; otherwise
             # shift + rel could round past the unit's extremes (a mean of
@@ -262,6 +267,8 @@ def reduce_runs_block(
         vmax[:k],
         above_area[:, :k],
         above_w[:, :k],
+        shifts[:k],
+        rels,
     )
 
 
