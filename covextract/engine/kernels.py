@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["area_weights", "center_runs", "group_by_block", "reduce_runs_block", "unit_shift"]
+__all__ = ["area_weights", "center_runs", "group_by_block", "reduce_runs_block"]
 
 
 @njit(nogil=True, cache=True)
@@ -35,32 +35,6 @@ def _row_offsets(rows, m, per):
     for r in range(nrow):
         offs[r + 1] += offs[r]
     return rmin, offs
-
-
-@njit(nogil=True, cache=True)
-def unit_shift(values, valid, eu, ep, i, ru, rs, rl, j, u):  # pragma: no cover - compiled
-    """The unit's first valid value in the block: its entries first, then its runs.
-
-    Deviations of the unit's values are summed around it. Taken per unit (not
-    per block), it lies within the unit's own values, so Σw·(v−s)² keeps its
-    digits however far the block's other units are (0.3 next to 3e5), and a
-    unit whose valid values are all equal gets deviations, sums of
-    deviations, and spread, of exactly 0. 0.0 when the unit has no valid pixel.
-    ``i`` and ``j`` are the unit's first entry and first run.
-    """
-    ne = eu.size
-    nr = ru.size
-    while i < ne and eu[i] == u:
-        p = ep[i]
-        if valid[p]:
-            return values[p]
-        i += 1
-    while j < nr and ru[j] == u:
-        for p in range(rs[j], rs[j] + rl[j]):
-            if valid[p]:
-                return values[p]
-        j += 1
-    return 0.0
 
 
 @njit(nogil=True, cache=True)
@@ -85,10 +59,14 @@ def reduce_runs_block(
     Entries ``(eu, ep, ec)`` with true areas ``ea``; runs ``(ru, rs, rl)`` of
     weight 1 with one area per run (``run_areas``) or, when
     ``per_pixel_area``, the area of every pixel of the block (``pixel_areas``).
-    Each unit's deviations are summed around its own first valid value in
-    the block (:func:`unit_shift`) and turned into the mean (``shift +
-    Σw·d/Σw``, kept within the unit's extremes) and Σw·(v − mean)² per unit
-    at the end. Each unit's entries are summed first, in their order, then
+    Each unit's deviations d = v − shift are summed around its own first
+    valid value in the block (its entries first, then its runs) and turned
+    into the mean (``shift + Σw·d/Σw``, kept within the unit's extremes) and
+    Σw·(v − mean)² per unit at the end. Taken per unit, not per block, the
+    shift lies within the unit's own values, so Σw·d² keeps its digits
+    however far the block's other units are (0.3 next to 3e5), and a unit
+    whose valid values are all equal gets deviations, and a spread, of
+    exactly 0. Each unit's entries are summed first, in their order, then
     its runs, each run on its own first.
 
     Returns ``units`` (sorted) and per unit ``(w_all, area_all, count, w,
@@ -127,8 +105,11 @@ def reduce_runs_block(
         else:
             u = ru[j]
         units[k] = u
-        shift = unit_shift(values, valid, eu, ep, i, ru, rs, rl, j, u)
-        shifts[k] = shift
+        # the shift is set at the unit's first valid pixel, in the loops
+        # below: a scan ahead for it would read the invalid pixels before it
+        # twice (6 % of the covered pixels in the benchmark's cloudy scene)
+        shift = 0.0
+        found = False
         while i < ne and eu[i] == u:
             c = ec[i]
             a = ea[i]
@@ -139,6 +120,9 @@ def reduce_runs_block(
             p = ep[i]
             if valid[p]:
                 v = values[p]
+                if not found:
+                    shift = v
+                    found = True
                 d = v - shift
                 count[k] += 1
                 wsum[k] += w
@@ -172,7 +156,18 @@ def reduce_runs_block(
             hi = -np.inf
             hits[:] = 0.0
             hits_a[:] = 0.0
-            for p in range(start, start + n):
+            first = start
+            if not found:
+                # up to the unit's first valid pixel, which becomes its shift;
+                # the invalid pixels before it add only their areas
+                while first < start + n and not valid[first]:
+                    if per_pixel_area:
+                        r_a += pixel_areas[first]
+                    first += 1
+                if first < start + n:
+                    shift = values[first]
+                    found = True
+            for p in range(first, start + n):
                 if per_pixel_area:
                     pa = pixel_areas[p]
                     r_a += pa
@@ -234,6 +229,7 @@ def reduce_runs_block(
                     above_area[t, k] += hits[t] * a / 1e6
                     above_w[t, k] += hits[t] * wf
             j += 1
+        shifts[k] = shift
         k += 1
     mean = np.empty(k)
     m2 = np.zeros(k)

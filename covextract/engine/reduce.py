@@ -185,8 +185,7 @@ def reduce_block_runs(
     entries pixel by pixel, then each run over its pixels, so the cost is
     per covered pixel, with no temporaries of the block's size and no
     expansion of the runs. Each unit's squared deviations are accumulated
-    around its own first valid value in the block
-    (:func:`covextract.engine.kernels.unit_shift`) and turned into
+    around its own first valid value in the block and turned into
     Σw·(v − mean)², equal to the per-pixel result to float rounding (about
     1e-13 relative on smooth data), and exactly 0 for a unit whose valid
     values are all equal.
