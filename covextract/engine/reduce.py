@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from covextract.engine.kernels import block_shift, reduce_runs_block
+from covextract.engine.kernels import reduce_runs_block
 
 __all__ = ["BlockPartial", "Accumulator", "reduce_block", "reduce_block_runs"]
 
@@ -34,7 +34,7 @@ class BlockPartial:
     area_all: np.ndarray  # Σ c·a/1e6 over every entry, km²
     count: np.ndarray  # valid entries
     w: np.ndarray  # Σ w over valid entries
-    mean: np.ndarray  # Σ w·v / Σ w (NaN where w == 0)
+    mean: np.ndarray  # Σ w·v / Σ w (NaN where w == 0), within [vmin, vmax]
     m2: np.ndarray  # Σ w·(v − mean)²
     csum: np.ndarray  # Σ c·v
     dens: np.ndarray  # Σ c·v·a/1e6
@@ -44,6 +44,11 @@ class BlockPartial:
     above_w: dict  # threshold -> Σ w over valid v > thr
     dist: tuple | None = None  # (unit, value, w) of valid entries, when asked for
     w_base: np.ndarray | None = None  # Σ w over valid entries without the weight_by factor
+    # the mean in two parts for the merge: a valid value of the unit in the
+    # block, and Σ w·(v − shift) / Σ w, which keeps digits that mean rounds
+    # away when the spread is far below the values (1e6 ± 1e-3)
+    shift: np.ndarray | None = None
+    rel: np.ndarray | None = None
 
 
 def reduce_block(
@@ -107,20 +112,28 @@ def reduce_block(
     count = np.bincount(lv, minlength=k).astype(np.int64)
     wsum = np.bincount(lv, weights=wv, minlength=k)
     wbase = wsum if factor is None else np.bincount(lv, weights=w_base[ok], minlength=k)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.bincount(lv, weights=wv * v, minlength=k) / wsum
-    dev = v - mean[lv]
-    m2 = np.bincount(lv, weights=wv * dev * dev, minlength=k)
-    csum = np.bincount(lv, weights=cv * v, minlength=k)
-    dens = np.bincount(lv, weights=cv * v * a[ok] / 1e6, minlength=k)
 
     vmin = np.full(k, np.nan)
     vmax = np.full(k, np.nan)
+    shift = np.zeros(k)
     if lv.size:
         vs = np.flatnonzero(np.r_[True, lv[1:] != lv[:-1]])
         present = lv[vs]
         vmin[present] = np.minimum.reduceat(v, vs)
         vmax[present] = np.maximum.reduceat(v, vs)
+        shift[present] = v[vs]
+    # the mean as the unit's first valid value plus the weighted mean of the
+    # deviations from it, not Σw·v / Σw (which may round off a value that all
+    # pixels share), kept within the unit's extremes as in the run reduction;
+    # a unit of equal values gets its value and m2 = 0 exactly
+    d = v - shift[lv]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = np.bincount(lv, weights=wv * d, minlength=k) / wsum
+    mean = np.minimum(np.maximum(shift + rel, vmin), vmax)
+    dev = v - mean[lv]
+    m2 = np.bincount(lv, weights=wv * dev * dev, minlength=k)
+    csum = np.bincount(lv, weights=cv * v, minlength=k)
+    dens = np.bincount(lv, weights=cv * v * a[ok] / 1e6, minlength=k)
 
     above_area, above_w = {}, {}
     for thr in thresholds:
@@ -147,6 +160,8 @@ def reduce_block(
         above_w,
         dist,
         wbase,
+        shift,
+        rel,
     )
 
 
@@ -169,10 +184,11 @@ def reduce_block_runs(
     loop (:func:`covextract.engine.kernels.reduce_runs_block`): per unit its
     entries pixel by pixel, then each run over its pixels, so the cost is
     per covered pixel, with no temporaries of the block's size and no
-    expansion of the runs. Squared deviations are accumulated around one
-    valid value of the block (:func:`covextract.engine.kernels.block_shift`)
-    and turned into Σw·(v − mean)² per unit, equal to the per-pixel result
-    to float rounding (about 1e-13 relative on smooth data).
+    expansion of the runs. Each unit's squared deviations are accumulated
+    around its own first valid value in the block and turned into
+    Σw·(v − mean)², equal to the per-pixel result to float rounding (about
+    1e-13 relative on smooth data), and exactly 0 for a unit whose valid
+    values are all equal.
 
     Parameters
     ----------
@@ -220,6 +236,8 @@ def reduce_block_runs(
         vmax,
         above_a,
         above_w,
+        shift,
+        rel,
     ) = reduce_runs_block(
         values,
         valid,
@@ -234,7 +252,6 @@ def reduce_block_runs(
         np.asarray(pixel_areas, dtype=np.float64).ravel() if per_pixel_area else empty,
         per_pixel_area,
         bool(weighting),
-        block_shift(values, valid),
         thr,
     )
     above_area = {t: above_a[j] for j, t in enumerate(thresholds)}
@@ -255,6 +272,8 @@ def reduce_block_runs(
         above_wd,
         None,
         wsum,
+        shift,
+        rel,
     )
 
 
@@ -272,6 +291,8 @@ class Accumulator:
     w: np.ndarray = field(init=False)
     mean: np.ndarray = field(init=False)
     m2: np.ndarray = field(init=False)
+    shift: np.ndarray = field(init=False)
+    rel: np.ndarray = field(init=False)
     csum: np.ndarray = field(init=False)
     dens: np.ndarray = field(init=False)
     vmin: np.ndarray = field(init=False)
@@ -289,6 +310,8 @@ class Accumulator:
         self.w = np.zeros(n)
         self.mean = np.zeros(n)
         self.m2 = np.zeros(n)
+        self.shift = np.zeros(n)
+        self.rel = np.zeros(n)
         self.csum = np.zeros(n)
         self.dens = np.zeros(n)
         self.vmin = np.full(n, np.inf)
@@ -302,7 +325,13 @@ class Accumulator:
 
         Means and squared deviations are merged with the pairwise update of
         Chan, Golub & LeVeque (1979), which keeps float64 precision where a
-        raw Σw·v² would cancel (temperatures in kelvin).
+        raw Σw·v² would cancel (temperatures in kelvin). The running mean is
+        kept as ``shift + rel``: ``shift`` the unit's shift in its first block
+        with valid values, ``rel`` the mean's offset from it. The difference
+        of two blocks' means is then ``(shift_b − shift) + (rel_b − rel)``, the
+        first term exact for values of one magnitude, so it keeps the digits
+        below the values' rounding (a spread of 1e-3 on values of 1e6 loses
+        about 1e-9 of its value to means rounded at 1e6, measured).
         """
         u = p.units
         self.w_all[u] += p.w_all
@@ -316,14 +345,26 @@ class Accumulator:
         wa = self.w[uh]
         wb = p.w[has]
         tot = wa + wb
-        delta = p.mean[has] - self.mean[uh]
-        self.mean[uh] += delta * (wb / tot)
+        if p.shift is None:  # a partial that gives only its mean
+            p_shift, p_rel = p.mean[has], np.zeros(uh.size)
+        else:
+            p_shift, p_rel = p.shift[has], p.rel[has]
+        shift = np.where(wa > 0, self.shift[uh], p_shift)
+        self.shift[uh] = shift
+        rel = self.rel[uh]
+        delta = (p_shift - shift) + (p_rel - rel)
+        self.rel[uh] = rel + delta * (wb / tot)
         self.m2[uh] += p.m2[has] + delta * delta * (wa * wb / tot)
         self.w[uh] = tot
         present = p.count > 0
         up = u[present]
         self.vmin[up] = np.minimum(self.vmin[up], p.vmin[present])
         self.vmax[up] = np.maximum(self.vmax[up], p.vmax[present])
+        # equal block means give delta = 0 (mean and m2 unchanged, a unit of
+        # equal values keeps m2 = 0); the mean stays within the merged
+        # extremes, which the update could otherwise pass by a rounding
+        mean = shift + self.rel[uh]
+        self.mean[uh] = np.minimum(np.maximum(mean, self.vmin[uh]), self.vmax[uh])
         for t in self.thresholds:
             self.above_area[t][u] += p.above_area[t]
             self.above_w[t][u] += p.above_w[t]

@@ -129,8 +129,8 @@ def _assert_equal_stats(ref, got):
     assert_allclose(got.mean[has], ref.mean[has], rtol=1e-12, atol=0)
     std_ref = np.sqrt(ref.m2[has] / ref.w[has])
     std_got = np.sqrt(got.m2[has] / got.w[has])
-    # the per-pixel path itself is off by up to ~2e-11 on this 300 K +- 0.01 field
-    # (see test_run_path_spread_is_at_least_as_accurate), hence the looser bound
+    # both paths are off by up to ~3e-12 on this 300 K +- 0.01 field (see
+    # test_run_path_spread_is_at_least_as_accurate), hence the looser bound
     assert_allclose(std_got, std_ref, rtol=5e-11, atol=0)
     assert_array_equal(got.vmin, ref.vmin)
     assert_array_equal(got.vmax, ref.vmax)
@@ -204,7 +204,11 @@ def test_run_path_spread_is_at_least_as_accurate(grid_name, monkeypatch):
         err_ref.append(float(abs(np.sqrt(ref.m2[u] / ref.w[u]) - exact) / exact))
         err_got.append(float(abs(np.sqrt(got.m2[u] / got.w[u]) - exact) / exact))
     assert max(err_got) < 1e-11
-    assert max(err_got) <= max(err_ref)
+    assert max(err_ref) < 1e-11
+    # both paths now take deviations around a value of the unit itself and sit
+    # on the same floor (measured 2.7e-12 and 2.3e-12, set by the float64
+    # weights); before, the per-pixel path's Σw·v/Σw mean was off by up to 1.6e-11
+    assert max(err_got) <= 1.001 * max(err_ref)
 
 
 @pytest.mark.parametrize("grid_name", ["latlon", "mercator"])
