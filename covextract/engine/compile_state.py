@@ -25,7 +25,7 @@ __all__ = ["KERNELS_BY_RULE", "COMMON_KERNELS", "kernels_for", "kernels_need_com
 
 #: Kernels every zonal pass calls, whatever its pixel rule (the reduction of a
 #: block and the grouping of weights by block). Their helpers are compiled with them.
-COMMON_KERNELS = ("reduce_runs_block", "block_shift", "group_by_block")
+COMMON_KERNELS = ("reduce_runs_block", "group_by_block")
 
 #: The coverage kernel of each pixel rule or point method (points need none).
 KERNELS_BY_RULE = {

@@ -76,9 +76,9 @@ def test_first_refresh_computes_everything_and_equals_a_full_run(
     assert result.computed["ndvi"] == ["all"]
     full = _full_run(folder, tmp_path, write_recipe, refresh_recipe)
     assert _outputs(folder) == _outputs(full)
-    # the panel holds every series covariate's per-period values, one file per month
+    # the panel follows the recipe: only the periods: covariate's selection (2021), once
     panel = sorted(p.name for p in (folder / "out" / "panel").iterdir())
-    assert len(panel) == 36 and panel[0] == "2019-01-01.parquet"
+    assert len(panel) == 12 and panel[0] == "2021-01-01.parquet"
 
 
 def test_second_refresh_with_nothing_new_does_nothing(scene):
