@@ -22,7 +22,7 @@ Names are loaded on first use so that ``covextract --help`` stays fast.
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+from covextract.core.version import __version__
 
 __all__ = [
     "__version__",

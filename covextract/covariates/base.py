@@ -228,7 +228,7 @@ class Covariate:
 
     def fingerprint(self, plan) -> dict:
         """What the covariate's results depend on besides its input files and units."""
-        from covextract import __version__
+        from covextract.core.version import __version__
 
         return {
             "covextract": __version__,

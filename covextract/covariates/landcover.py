@@ -36,9 +36,8 @@ class LandCoverCovariate(Covariate):
         )
 
     def plan(self, ctx: PlanContext) -> bool:
-        from covextract.engine.categorical import ClassTable, PairedSource
+        from covextract.engine.categorical import ClassTable, PairedSource, categorical_columns
         from covextract.errors import RasterError
-        from covextract.stats.categorical import categorical_columns
 
         if self.point:
             ctx.problem(

@@ -212,7 +212,7 @@ class SeriesCovariate(Covariate):
         Two covariates with the same per-period statistics share their pieces,
         and a change of window, anomaly or trend recomputes no period.
         """
-        from covextract import __version__
+        from covextract.core.version import __version__
 
         return {
             "covextract": __version__,

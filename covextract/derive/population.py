@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import shapely
 
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.stream import stream_pass
 from covextract.engine.weights import WeightSet
 from covextract.engine.zonal import LOW_VALID_SHARE, PIXEL_RULES, build_weights

@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.reduce import Accumulator, reduce_block, reduce_block_runs
 from covextract.engine.weights import WeightSet, expand_runs, merge_parts
 

@@ -17,14 +17,17 @@ hundred runs and a few hundred boundary entries instead of 8 000 entries.
 
 from __future__ import annotations
 
+import hashlib
+
 from dataclasses import dataclass
 
 import numpy as np
 
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.kernels import group_by_block
 
-__all__ = ["WeightSet", "weights_from_coverage", "expand_runs"]
+__all__ = [
+    "weights_key","WeightSet", "weights_from_coverage", "expand_runs"]
 
 
 def expand_runs(run_unit, run_pix, run_len):
@@ -257,3 +260,15 @@ def weights_from_coverage(coverage, grid: Grid, rule: str) -> WeightSet:
         run_pix=r_pix,
         run_len=r_len,
     )
+
+
+def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str:
+    """Cache key of one weight set."""
+    import pyproj
+
+    from covextract.engine.coverage import KERNEL_VERSION
+
+    text = "|".join(
+        [str(KERNEL_VERSION), pyproj.proj_version_str, grid_fingerprint, units_fingerprint, rule]
+    )
+    return hashlib.sha256(text.encode()).hexdigest()[:32]

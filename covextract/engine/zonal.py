@@ -15,8 +15,7 @@ import numpy as np
 from covextract.core.options import PIXEL_RULE_NAMES, POINT_METHOD_NAMES, uses_area_weights
 from covextract.engine.coverage import point_coverage, polygon_coverage
 from covextract.engine.weights import WeightSet, weights_from_coverage
-from covextract.stats.continuous import finalize
-from covextract.stats.names import StatName
+from covextract.engine.finish import finalize
 
 __all__ = [
     "MAX_ENTRIES",
@@ -89,7 +88,7 @@ def build_weights(geoms, grid, rule: str) -> WeightSet:
 def zonal(
     source,
     geoms,
-    stats: list[StatName],
+    stats: list,
     *,
     rule: str = "overlap",
     area_weighting="auto",
@@ -108,7 +107,7 @@ def zonal(
         ``grid``, ``read_block(window)``, ``to_values(stored)``.
     geoms : sequence of shapely geometries or None
         Units in the raster's CRS (polygons, or points for point rules).
-    stats : list of StatName
+    stats : list of Statistic
         Parsed statistic names.
     rule : str
         ``overlap`` (default), ``center``, ``touched``; ``nearest`` or
@@ -146,7 +145,7 @@ def zonal(
             PairedSource,
             categorical_reducer,
         )
-        from covextract.stats.categorical import finalize_categorical
+        from covextract.engine.categorical import finalize_categorical
 
         earlier = categorical.get("earlier")
         table = categorical["table"]
@@ -351,7 +350,7 @@ def unit_groups(
 def zonal_units(
     source,
     geoms,
-    stats: list[StatName],
+    stats: list,
     *,
     rule: str = "overlap",
     area_weighting="auto",
@@ -375,7 +374,7 @@ def zonal_units(
     """
     import hashlib
 
-    from covextract.engine.cache import weights_key
+    from covextract.engine.weights import weights_key
 
     geoms = np.array(list(geoms), dtype=object)
     n = len(geoms)

@@ -1,7 +1,7 @@
 """Opening rasters: the only place that turns a raster path into pixels.
 
 :func:`open_layer` checks a file and returns a :class:`RasterSource`: its
-:class:`~covextract.engine.grid.Grid`, how to turn stored numbers into
+:class:`~covextract.core.grid.Grid`, how to turn stored numbers into
 physical values (scale, offset, nodata, valid range), and a thread-local
 block reader for the engine. :func:`describe_raster` reports a file for
 ``covextract describe``.
@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.errors import InputFileError, RasterError
 
 __all__ = ["RasterSource", "open_layer", "describe_raster", "gdal_env"]

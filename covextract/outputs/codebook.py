@@ -93,7 +93,7 @@ REFERENCES = {
 
 def methods_paragraph(result) -> tuple[str, list[str]]:
     """A methods paragraph a study can adapt, and the references it cites."""
-    from covextract import __version__
+    from covextract.core.version import __version__
 
     rows = [r for r in result.codebook if r.get("statistic") != "qa"]
     layers = sorted({r["layer"] for r in rows})

@@ -1,7 +1,7 @@
 """The statistic names a recipe may ask for: the recipe's one door to the statistics.
 
 Every use of :mod:`covextract.stats.names` and of the categorical names of
-:mod:`covextract.stats.categorical` by the recipe package goes through this
+:mod:`covextract.stats.names` (``CATEGORICAL_STATS``) by the recipe package goes through this
 module, so moving them to another source of statistic names touches this
 file only.
 """
@@ -32,7 +32,7 @@ def categorical_stats() -> tuple[str, ...]:
     """Statistics of categorical layers (``share`` gives one column per class or group)."""
     # Imported when first needed: the categorical statistics bring numpy, which
     # reading a recipe does not need otherwise (``covextract check`` starts faster).
-    from covextract.stats.categorical import CATEGORICAL_STAT_NAMES
+    from covextract.stats.names import CATEGORICAL_STATS as CATEGORICAL_STAT_NAMES
 
     return tuple(CATEGORICAL_STAT_NAMES)
 

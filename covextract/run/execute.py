@@ -263,7 +263,7 @@ def run(
             skip_when_current=False,
         ).run
     else:
-        from covextract.engine.cache import WeightCache
+        from covextract.state.cache import WeightCache
 
         cache = WeightCache(None)
         with execution_settings(plan.recipe, threads, scheduler) as (threads, client):

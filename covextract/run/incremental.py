@@ -399,10 +399,13 @@ class _Pieces:
         task, _fp, done = self.decided[0]
         if not done:
             return None
+        from covextract.covariates import Outcome
+
         work, ids = self.work, self.ids
-        return self._load(
+        fields = self._load(
             task, lambda path: read_static_piece(path, covariate_fp=work.fingerprint, ids=ids)
         )
+        return None if fields is None else Outcome(**fields)
 
     def store_static(self, outcome) -> None:
         """Write the piece of a covariate without periods that was just computed."""
@@ -509,8 +512,8 @@ def execute_incremental(
 def _execute(
     plan, ledger, started, *, progress, threads, scheduler, recompute, skip_when_current
 ) -> RefreshResult:
-    from covextract import __version__
-    from covextract.engine.cache import WeightCache
+    from covextract.core.version import __version__
+    from covextract.state.cache import WeightCache
     from covextract.outputs.write import write_outputs
     from covextract.run.execute import Assembly, compute_covariate, execution_settings
 

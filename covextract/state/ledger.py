@@ -509,7 +509,7 @@ class Ledger:
             A file (a folder is hashed over its files, see
             :func:`covextract.outputs.manifest.file_sha256`).
         """
-        from covextract.outputs.manifest import file_sha256
+        from covextract.io.paths import file_sha256
 
         path = Path(path)
         try:

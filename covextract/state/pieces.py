@@ -215,9 +215,11 @@ def write_static_piece(
 
 
 def read_static_piece(path, *, covariate_fp: str, ids):
-    """The :class:`~covextract.covariates.Outcome` stored in a static piece."""
-    from covextract.covariates.base import Outcome
+    """The fields of the outcome stored in a static piece, as a dict.
 
+    Keys: ``values``, ``qa``, ``valid_share``, ``unknown_codes``, ``learnt``
+    (the fields of :class:`covextract.covariates.Outcome`).
+    """
     path = Path(path)
     frame, meta = _read(path)
     _check(path, meta, {"covariate_fingerprint": covariate_fp, "period_start": STATIC}, ids)
@@ -231,7 +233,7 @@ def read_static_piece(path, *, covariate_fp: str, ids):
             columns[name] = np.array([np.nan if v is None else v for v in col], dtype=object)
         else:
             columns[name] = col.to_numpy(dtype=np.dtype(dtype))
-    return Outcome(
+    return dict(
         values=columns,
         qa=_qa_lists(frame["qa"]),
         valid_share=frame["valid_share"].to_numpy(dtype=np.float64),

@@ -18,13 +18,10 @@ __all__ = [
     "CONTINUOUS_STATS",
     "POINT_STATS",
     "THRESHOLD_STATS",
-    "StatName",
+    "CATEGORICAL_STATS",
     "parse_stat",
     "known_stat_names",
 ]
-
-#: A parsed statistic (the registry's :class:`~covextract.stats.registry.Statistic`).
-StatName = Statistic
 
 #: Statistics of continuous layers, in the order they are documented.
 CONTINUOUS_STATS = tuple(s.name for s in registry.family("continuous") if s.kind != "percentile")
@@ -32,6 +29,8 @@ CONTINUOUS_STATS = tuple(s.name for s in registry.family("continuous") if s.kind
 THRESHOLD_STATS = tuple(s.name for s in registry.family("continuous") if s.needs_threshold)
 #: Statistics of point units (value under the point).
 POINT_STATS = tuple(s.name for s in registry.family("point"))
+#: Statistics of categorical layers.
+CATEGORICAL_STATS = tuple(s.name for s in registry.family("categorical"))
 
 
 def parse_stat(name: str, *, point: bool = False) -> Statistic:

@@ -29,13 +29,12 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 __all__ = [
     "Statistic",
-    "FinishContext",
     "register",
     "registered",
     "get",
@@ -48,21 +47,6 @@ __all__ = [
 LABEL = "none (a label)"
 #: Unit text of a share between 0 and 1.
 FRACTION = "fraction (0-1)"
-
-
-@dataclass(frozen=True)
-class FinishContext:
-    """What finishing a continuous statistic needs besides the accumulator.
-
-    ``has`` marks units with at least one valid pixel, ``valid_share`` is the
-    finished valid share, ``threshold`` the covariate's threshold and
-    ``percentiles`` the weighted percentiles already computed (name → array).
-    """
-
-    has: np.ndarray
-    valid_share: np.ndarray
-    threshold: float | None = None
-    percentiles: dict = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

@@ -608,7 +608,7 @@ def run_overlap(scene: Scene, report: Report, polys, bufs, state: dict) -> None:
 
 def run_cache_and_series(scene: Scene, report: Report, polys, state: dict, tmp: Path) -> None:
     """First run (weights built, stored) vs second run (weights from the cache); the series."""
-    from covextract.engine.cache import WeightCache, weights_key
+    from covextract.state.cache import WeightCache, weights_key
 
     stats = _stat_names()
     path = scene.raster

@@ -27,7 +27,7 @@ from covextract.derive.population import (
     calibrate,
     reallocate,
 )
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.zonal import build_weights
 from covextract.errors import GeometryError, RasterError, RecipeError, TableError
 from covextract.io.rasters import open_layer

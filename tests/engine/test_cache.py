@@ -6,8 +6,8 @@ from affine import Affine
 from pyproj import CRS
 from shapely.geometry import box
 
-from covextract.engine.cache import WeightCache, weights_key
-from covextract.engine.grid import Grid
+from covextract.state.cache import WeightCache, weights_key
+from covextract.core.grid import Grid
 from covextract.engine.zonal import build_weights
 from covextract.errors import CacheWarning
 

@@ -7,7 +7,7 @@ from numpy.testing import assert_allclose
 from pyproj import CRS, Geod
 from shapely.geometry import Polygon
 
-from covextract.engine.grid import Grid, ellipsoid_band_area
+from covextract.core.grid import Grid, ellipsoid_band_area
 
 GEOD = Geod(ellps="WGS84")
 

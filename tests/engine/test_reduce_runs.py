@@ -16,7 +16,7 @@ from shapely.geometry import Point
 
 import covextract.engine.stream as stream
 from covextract.engine.coverage import polygon_coverage
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.reduce import Accumulator
 from covextract.engine.weights import weights_from_coverage
 

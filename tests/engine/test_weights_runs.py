@@ -17,7 +17,7 @@ from pyproj import CRS
 from shapely.geometry import box
 
 from covextract.engine.coverage import polygon_coverage
-from covextract.engine.grid import Grid
+from covextract.core.grid import Grid
 from covextract.engine.weights import WeightSet, weights_from_coverage
 from tests.engine.test_coverage import _random_polygons, to_world
 

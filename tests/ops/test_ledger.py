@@ -307,7 +307,7 @@ def test_file_hash_reads_a_file_again_only_when_it_changed(tmp_path, monkeypatch
     import hashlib
     import os
 
-    import covextract.outputs.manifest as manifest
+    import covextract.io.paths as manifest
 
     data = tmp_path / "rain_2021-03.tif"
     data.write_bytes(b"first content")

@@ -22,7 +22,7 @@ class ArraySource:
     def __init__(self, data, nodata=None):
         from pyproj import CRS
 
-        from covextract.engine.grid import Grid
+        from covextract.core.grid import Grid
 
         self.data = data
         self.nodata = nodata

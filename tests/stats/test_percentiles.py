@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from covextract.stats.continuous import weighted_percentiles
+from covextract.engine.finish import weighted_percentiles
 
 QS = [0, 1, 10, 25, 33.3, 50, 75, 90, 99, 100]
 

@@ -9,7 +9,6 @@ the confidential inputs, never with outputs meant for sharing.
 
 from __future__ import annotations
 
-import hashlib
 import io
 import warnings
 import zipfile
@@ -18,21 +17,11 @@ from pathlib import Path
 import numpy as np
 
 from covextract.engine.coverage import KERNEL_VERSION
-from covextract.engine.weights import WeightSet
+from covextract.engine.weights import WeightSet, weights_key
 from covextract.errors import CacheWarning
 from covextract.io.writers import atomic_write_bytes
 
 __all__ = ["KERNEL_VERSION", "weights_key", "WeightCache"]
-
-
-def weights_key(grid_fingerprint: str, units_fingerprint: str, rule: str) -> str:
-    """Cache key of one weight set."""
-    import pyproj
-
-    text = "|".join(
-        [str(KERNEL_VERSION), pyproj.proj_version_str, grid_fingerprint, units_fingerprint, rule]
-    )
-    return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
 class WeightCache:

@@ -1,4 +1,4 @@
-"""Statistics of continuous layers from accumulated per-unit sums.
+"""Finishing the statistics of continuous layers from the accumulated per-unit sums.
 
 Definitions (``c`` coverage, ``a`` true pixel area, ``w`` the statistical
 weight: ``c·a`` with area weighting, ``c`` without; sums over valid pixels
@@ -24,12 +24,29 @@ statistic missing (NaN), never 0.
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 
 from covextract.engine.reduce import Accumulator
-from covextract.stats.registry import Statistic
 
-__all__ = ["finalize", "weighted_percentiles"]
+__all__ = ["FinishContext", "finalize", "weighted_percentiles"]
+
+
+@dataclass(frozen=True)
+class FinishContext:
+    """What finishing a continuous statistic needs besides the accumulator.
+
+    ``has`` marks units with at least one valid pixel, ``valid_share`` is the
+    finished valid share, ``threshold`` the covariate's threshold and
+    ``percentiles`` the weighted percentiles already computed (name → array).
+    """
+
+    has: np.ndarray
+    valid_share: np.ndarray
+    threshold: float | None = None
+    percentiles: dict = field(default_factory=dict)
+
 
 
 def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
@@ -83,14 +100,14 @@ def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
     return out
 
 
-def finalize(acc: Accumulator, stats: list[Statistic], *, offgrid_w: np.ndarray, threshold=None):
+def finalize(acc: Accumulator, stats: list, *, offgrid_w: np.ndarray, threshold=None):
     """Turn an accumulator into one array per requested statistic.
 
     Parameters
     ----------
     acc : Accumulator
         Merged sums of every block.
-    stats : list of Statistic
+    stats : list of Statistic (see :mod:`covextract.stats.registry`)
         Requested statistics.
     offgrid_w : ndarray
         Per unit, the statistical weight of the part off the grid (counts as
@@ -103,8 +120,6 @@ def finalize(acc: Accumulator, stats: list[Statistic], *, offgrid_w: np.ndarray,
     dict
         ``name -> ndarray`` (float64 with NaN for missing; ``count`` int64).
     """
-    from covextract.stats.registry import FinishContext
-
     n = acc.n_units
     has = acc.count > 0
     denom_all = acc.w_all + offgrid_w
