@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 
-from covextract.derive.population import CalibrationWarning
+from covextract.derive.calibration import CalibrationWarning
 from covextract.errors import RecipeError, TableError
 from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe

@@ -99,7 +99,7 @@ class ReallocateCovariate(Covariate):
         return True
 
     def compute(self, ctx: ComputeContext) -> Outcome:
-        from covextract.derive.population import reallocate
+        from covextract.derive.reallocation import reallocate
 
         plan = ctx.plan
         src = self.source(plan)
@@ -136,9 +136,9 @@ class ReallocateCovariate(Covariate):
         return f"zones without light: {', '.join(dark)}" if dark else ""
 
     def qa_codes(self) -> dict:
-        from covextract.derive import population
+        from covextract.derive.reallocation import REALLOCATION_QA_CODES
 
-        return dict(population.REALLOCATION_QA_CODES)
+        return dict(REALLOCATION_QA_CODES)
 
     def extra_inputs(self, recipe) -> list:
         """The zone and totals files, for the manifest and fingerprints."""
@@ -200,7 +200,7 @@ class CalibrateCovariate(Covariate):
         return True
 
     def compute(self, ctx: ComputeContext) -> Outcome:
-        from covextract.derive.population import calibrate
+        from covextract.derive.calibration import calibrate
         from covextract.engine.zonal import zonal_units
 
         plan = ctx.plan
@@ -242,6 +242,6 @@ class CalibrateCovariate(Covariate):
         )
 
     def qa_codes(self) -> dict:
-        from covextract.derive import population
+        from covextract.derive.calibration import CALIBRATION_QA_CODES
 
-        return dict(population.CALIBRATION_QA_CODES)
+        return dict(CALIBRATION_QA_CODES)

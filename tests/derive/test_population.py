@@ -20,14 +20,9 @@ from pyproj import CRS, Geod
 from scipy import stats
 from shapely.geometry import Point, Polygon, box
 
-from covextract.derive.population import (
-    REALLOCATION_QA_CODES,
-    CalibrationWarning,
-    ReallocationWarning,
-    calibrate,
-    reallocate,
-)
 from covextract.core.grid import Grid
+from covextract.derive.calibration import CalibrationWarning, calibrate
+from covextract.derive.reallocation import REALLOCATION_QA_CODES, ReallocationWarning, reallocate
 from covextract.engine.zonal import build_weights
 from covextract.errors import GeometryError, RasterError, RecipeError, TableError
 from covextract.io.rasters import open_layer
