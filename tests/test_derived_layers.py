@@ -7,8 +7,8 @@ from affine import Affine
 from numpy.testing import assert_allclose
 
 from covextract.errors import RecipeError
-from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe
+from covextract.run import check_recipe, run
 
 T = Affine(100.0, 0, 500_000.0, 0, -100.0, 9_000_000.0)
 

@@ -7,8 +7,8 @@ from numpy.testing import assert_allclose
 
 from covextract.derive.calibration import CalibrationWarning
 from covextract.errors import RecipeError, TableError
-from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe
+from covextract.run import check_recipe, run
 
 
 def _recipe(demo_dir, covariates, units=None):

@@ -8,8 +8,8 @@ from affine import Affine
 from numpy.testing import assert_allclose
 
 from covextract.errors import InputFileError, LagZeroWarning, TableError
-from covextract.run import check_recipe, run
 from covextract.recipe import load_recipe
+from covextract.run import check_recipe, run
 
 T = Affine(0.01, 0, 10.0, 0, -0.01, 1.0)
 MONTHS = pd.period_range("2019-01", "2020-12", freq="M")

@@ -32,9 +32,9 @@ def refresh_command(
     """
     code = 0
     with cli_errors(debug):
-        from covextract.state.lock import EXIT_CODES, LockedError
         from covextract.cli.progress import make_progress
         from covextract.ops.refresh import refresh
+        from covextract.state.lock import EXIT_CODES, LockedError
 
         try:
             result = refresh(

@@ -25,10 +25,9 @@ def run_command(
 ) -> None:
     """Compute the covariates of RECIPE and write the table, codebook and manifest."""
     with cli_errors(debug):
+        from covextract.cli.progress import make_progress
         from covextract.cli.summary import print_summary
         from covextract.run import run
-
-        from covextract.cli.progress import make_progress
 
         result = run(
             recipe,

@@ -63,8 +63,8 @@ class ChangeCovariate(Covariate):
         return True
 
     def compute(self, ctx: ComputeContext) -> Outcome:
-        from covextract.sources.derived import ChangeSource, CollapsedSource
         from covextract.engine.zonal import zonal_units
+        from covextract.sources.derived import ChangeSource, CollapsedSource
 
         plan = ctx.plan
         how = self.spec.change.collapse

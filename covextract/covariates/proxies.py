@@ -25,8 +25,8 @@ class ReallocateCovariate(Covariate):
         return spec.reallocate is not None
 
     def plan(self, ctx: PlanContext) -> bool:
-        from covextract.io.tables import read_boundaries, read_study_table
         from covextract.core.messages import missing_column
+        from covextract.io.tables import read_boundaries, read_study_table
 
         spec = self.rspec = self.spec.reallocate
         key = self.where("reallocate")

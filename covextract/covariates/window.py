@@ -44,8 +44,8 @@ class WindowCovariate(SeriesCovariate):
         return layer.is_series and spec.before is not None
 
     def resolve(self, ctx: PlanContext) -> bool:
-        from covextract.errors import LagZeroWarning
         from covextract.core.messages import missing_column, user_stacklevel
+        from covextract.errors import LagZeroWarning
 
         before = self.before = self.spec.before
         column = before.date or ctx.recipe.study.date

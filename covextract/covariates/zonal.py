@@ -36,8 +36,8 @@ class ZonalCovariate(Covariate):
             self._column(f"{self.prefix}_{s.column}", s, **fill) for s in self.stats
         ]
         if weight_by and self.layer_name in ctx.sources and weight_by in ctx.sources:
-            from covextract.sources.weighted import WeightedSource
             from covextract.errors import CovextractError
+            from covextract.sources.weighted import WeightedSource
 
             try:
                 WeightedSource(ctx.sources[self.layer_name], ctx.sources[weight_by])

@@ -18,7 +18,6 @@ hundred runs and a few hundred boundary entries instead of 8 000 entries.
 from __future__ import annotations
 
 import hashlib
-
 from dataclasses import dataclass
 
 import numpy as np

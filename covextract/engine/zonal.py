@@ -14,8 +14,8 @@ import numpy as np
 
 from covextract.core.options import PIXEL_RULE_NAMES, POINT_METHOD_NAMES, uses_area_weights
 from covextract.engine.coverage import point_coverage, polygon_coverage
-from covextract.engine.weights import WeightSet, weights_from_coverage
 from covextract.engine.finish import finalize
+from covextract.engine.weights import WeightSet, weights_from_coverage
 
 __all__ = [
     "MAX_ENTRIES",
@@ -144,8 +144,8 @@ def zonal(
             CategoricalAccumulator,
             PairedSource,
             categorical_reducer,
+            finalize_categorical,
         )
-        from covextract.engine.categorical import finalize_categorical
 
         earlier = categorical.get("earlier")
         table = categorical["table"]

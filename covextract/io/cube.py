@@ -15,8 +15,8 @@ from pathlib import Path
 
 import numpy as np
 
-from covextract.core.periods import Period, Step, check_starts, parse_every
 from covextract.core.grid import Grid
+from covextract.core.periods import Period, Step, check_starts, parse_every
 from covextract.errors import InputFileError, RasterError
 from covextract.io.rasters import RasterSource, _check_path
 from covextract.io.series import SeriesIndex

@@ -17,8 +17,8 @@ import threading
 from dataclasses import dataclass
 from pathlib import Path
 
-from covextract.core.periods import Period, Step, check_starts, parse_every
 from covextract.core.grid import Grid
+from covextract.core.periods import Period, Step, check_starts, parse_every
 from covextract.errors import InputFileError, RasterError, RecipeError
 from covextract.io.rasters import RasterSource, open_layer
 from covextract.io.series import SeriesIndex

@@ -78,7 +78,8 @@ def default_log(recipe: str | os.PathLike) -> Path:
     from covextract.errors import CovextractError
 
     try:
-        from covextract.run.plan import load as _load, output_paths as _output_paths
+        from covextract.run.plan import load as _load
+        from covextract.run.plan import output_paths as _output_paths
 
         return Path(_output_paths(_load(recipe))["state"]).resolve() / LOG_NAME
     except CovextractError:

@@ -244,8 +244,8 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
             )
         )
     if isinstance(cov.get("periods"), str):
-        from covextract.errors import RecipeError
         from covextract.core.periods import parse_selection
+        from covextract.errors import RecipeError
 
         try:
             parse_selection(cov["periods"])

@@ -123,8 +123,8 @@ class Layer(RecipeModel):
     @classmethod
     def _valid_every(cls, value: str | None) -> str | None:
         if value is not None:
-            from covextract.errors import RecipeError
             from covextract.core.periods import parse_every
+            from covextract.errors import RecipeError
 
             try:
                 parse_every(value)
@@ -273,8 +273,8 @@ class Layer(RecipeModel):
                     )
                 )
             if self.expression is not None:
-                from covextract.sources.expression import parse_expression
                 from covextract.errors import RecipeError
+                from covextract.sources.expression import parse_expression
 
                 try:
                     parse_expression(self.expression, self.bands)

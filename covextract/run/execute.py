@@ -95,7 +95,7 @@ def compute_covariate(
     plan, cov, cache, *, progress: Progress, threads=None, client=None, period_values=None
 ) -> Outcome:
     """Compute one covariate of a plan, reporting its blocks to ``progress``."""
-    progress.start(f"{cov.prefix} ({cov.layer_name})", _blocks(cov, plan))
+    progress.start(f"{cov.qa_column[:-3] or cov.prefix} (layer {cov.layer_name})", _blocks(cov, plan))
     ctx = ComputeContext(
         plan,
         cache,

@@ -266,6 +266,7 @@ def piece_state(ledger, work, task, inputs_fp, state) -> str:
 
 
 def gaps_and_next(plan) -> tuple[dict, dict]:
+    """Per series layer: the periods missing inside its span, and the next period expected."""
     missing, nxt = {}, {}
     used = {c.layer_name for c in plan.covariates}
     for name, series in plan.series.items():
@@ -513,9 +514,9 @@ def _execute(
     plan, ledger, started, *, progress, threads, scheduler, recompute, skip_when_current
 ) -> RefreshResult:
     from covextract.core.version import __version__
-    from covextract.state.cache import WeightCache
     from covextract.outputs.write import write_outputs
     from covextract.run.execute import Assembly, compute_covariate, execution_settings
+    from covextract.state.cache import WeightCache
 
     recipe = plan.recipe
     state = Path(plan.output_paths["state"])

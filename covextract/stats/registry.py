@@ -187,7 +187,7 @@ def _per_year(u: str) -> str:
 
 # ----------------------------------------------------- continuous: finishing
 def _where_has(values):
-    def finish(acc, ctx: FinishContext):
+    def finish(acc, ctx):
         return np.where(ctx.has, values(acc, ctx), np.nan)
 
     return finish

@@ -6,10 +6,10 @@ from affine import Affine
 from pyproj import CRS
 from shapely.geometry import box
 
-from covextract.state.cache import WeightCache, weights_key
 from covextract.core.grid import Grid
 from covextract.engine.zonal import build_weights
 from covextract.errors import CacheWarning
+from covextract.state.cache import WeightCache, weights_key
 
 
 @pytest.fixture

@@ -107,8 +107,8 @@ def test_remote_schedulers_are_told_apart(address, local):
 
 
 def test_bounded_unit_groups_give_identical_values(scene, tmp_path):
-    from covextract.state.cache import WeightCache
     from covextract.engine.zonal import unit_groups, zonal_units
+    from covextract.state.cache import WeightCache
 
     path, geoms = scene
     src = open_layer(path)

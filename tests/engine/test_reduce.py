@@ -3,8 +3,8 @@
 import numpy as np
 from numpy.testing import assert_allclose
 
-from covextract.engine.reduce import Accumulator, reduce_block
 from covextract.engine.finish import finalize
+from covextract.engine.reduce import Accumulator, reduce_block
 from covextract.stats.names import parse_stat
 
 STATS = [

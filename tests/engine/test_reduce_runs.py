@@ -15,8 +15,8 @@ from pyproj import CRS
 from shapely.geometry import Point
 
 import covextract.engine.stream as stream
-from covextract.engine.coverage import polygon_coverage
 from covextract.core.grid import Grid
+from covextract.engine.coverage import polygon_coverage
 from covextract.engine.reduce import Accumulator
 from covextract.engine.weights import weights_from_coverage
 

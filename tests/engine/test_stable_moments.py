@@ -19,8 +19,8 @@ from pyproj import CRS
 from shapely.geometry import Point, box
 
 import covextract.engine.stream as stream
-from covextract.engine.coverage import polygon_coverage
 from covextract.core.grid import Grid
+from covextract.engine.coverage import polygon_coverage
 from covextract.engine.reduce import Accumulator, reduce_block, reduce_block_runs
 from covextract.engine.weights import weights_from_coverage
 from covextract.engine.zonal import PIXEL_RULES, zonal

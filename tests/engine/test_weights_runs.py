@@ -16,8 +16,8 @@ from numpy.testing import assert_array_equal
 from pyproj import CRS
 from shapely.geometry import box
 
-from covextract.engine.coverage import polygon_coverage
 from covextract.core.grid import Grid
+from covextract.engine.coverage import polygon_coverage
 from covextract.engine.weights import WeightSet, weights_from_coverage
 from tests.engine.test_coverage import _random_polygons, to_world
 

@@ -18,11 +18,11 @@ import numpy as np
 import pytest
 import rasterio
 
+from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
+from covextract.run import run
 from covextract.state.ledger import LEDGER_NAME, Ledger
 from covextract.state.lock import EXIT_CODES
 from covextract.state.pieces import PIECES_DIR, PieceWarning
-from covextract.ops.refresh import LedgerRebuiltWarning, refresh, refresh_status
-from covextract.run import run
 
 #: pieces of the recipe: 36 months of the rain mean (shared by two covariates), 24 of the
 #: NDVI mean, 36 of the rain maximum, and one for the static NDVI covariate

@@ -24,10 +24,10 @@ from typer.testing import CliRunner
 from covextract.cli.app import app
 from covextract.crashpoints import CRASH_ENV, HOLD_ENV
 from covextract.demo import lay_out_demo
-from covextract.state.ledger import Ledger
-from covextract.state.lock import EXIT_CODES, LockedError
 from covextract.ops.refresh import refresh
 from covextract.run import run
+from covextract.state.ledger import Ledger
+from covextract.state.lock import EXIT_CODES, LockedError
 
 LATE = ("rain/rain_202112.tif", "ndvi_monthly/ndvi_202112.tif")
 TABLE = Path("table.csv")  # as _outputs keys it: relative to out/

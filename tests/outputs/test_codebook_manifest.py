@@ -19,8 +19,8 @@ from covextract.demo import lay_out_demo
 from covextract.engine.zonal import QA_CODES as ENGINE_QA_CODES
 from covextract.outputs.codebook import CAUTIONS, CODEBOOK_FIELDS
 from covextract.outputs.manifest import verify_manifest
-from covextract.run import run
 from covextract.recipe import load_recipe
+from covextract.run import run
 from covextract.units.build import QA_CODES as UNIT_QA_CODES
 
 
