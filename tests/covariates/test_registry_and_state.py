@@ -76,8 +76,14 @@ def test_every_demo_column_is_legal_and_short(demo_dir):
 
 def test_a_run_leaves_the_state_a_refresh_reads(demo_dir):
     # after run, refresh with nothing new computes nothing (exit 3)
+    from covextract.ops.refresh import refresh_status
+
     recipe = demo_dir / "recipe.yaml"
     run(recipe)
+    status = refresh_status(recipe)
+    assert status.layers and all(
+        state == "computed" for periods in status.layers.values() for _, state in periods
+    )
     again = refresh(recipe)
     assert again.status == "nothing_to_do" and again.exit_code == 3
     assert again.computed == {}

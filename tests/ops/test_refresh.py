@@ -91,6 +91,19 @@ def test_second_refresh_with_nothing_new_does_nothing(scene):
     assert {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")} == before
 
 
+def test_after_a_run_status_shows_everything_computed_and_refresh_does_nothing(scene):
+    from covextract.ops.refresh import refresh_status
+
+    folder, recipe = scene
+    run(recipe)
+    status = refresh_status(recipe)
+    assert status.layers["rain"] and {s for _, s in status.layers["rain"]} == {"computed"}
+    before = {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")}
+    again = refresh(recipe)
+    assert again.status == "nothing_to_do" and again.exit_code == EXIT_CODES["nothing_to_do"]
+    assert {p: p.stat().st_mtime_ns for p in (folder / "out").rglob("*")} == before
+
+
 def test_adding_one_month_computes_only_that_month(refresh_recipe, scene, tmp_path, write_recipe):
     folder, recipe = scene
     held = [
