@@ -6,9 +6,92 @@ whole set as one unit has a single home.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 from covextract.crashpoints import crash_point
 
-__all__ = ["write_outputs"]
+__all__ = ["WRITERS", "Writer", "WriteContext", "write_outputs"]
+
+
+@dataclass
+class WriteContext:
+    """Where the outputs go (paths by role) and the records' geometries for a GeoPackage."""
+
+    paths: dict
+    geometry: tuple | None = None
+
+
+class Writer:
+    """One output of a :class:`~covextract.run.RunResult`, written atomically.
+
+    ``name`` is the role of its path in the recipe's output paths;
+    :meth:`write` returns ``(role, path)`` of every file it wrote, which the
+    manifest fingerprints. A new output (a report) is one more subclass in
+    :data:`WRITERS`; the run does not change.
+    """
+
+    name = "output"
+
+    def wanted(self, ctx: WriteContext) -> bool:
+        """True when the recipe asks for this output."""
+        return self.name in ctx.paths
+
+    def write(self, result, ctx: WriteContext) -> list:
+        """Write the output; return ``(role, path)`` of each file written."""
+        raise NotImplementedError
+
+
+class PanelWriter(Writer):
+    """The long panel: one Parquet file per period (``output.panel``)."""
+
+    name = "panel"
+
+    def write(self, result, ctx):
+        import pandas as pd
+
+        from covextract.outputs.panel import write_panel
+
+        panel = result.panel
+        if panel is None:
+            panel = pd.DataFrame(columns=[result.id_column, "column", "period_start"])
+        files = write_panel(ctx.paths["panel"], panel, id_column=result.id_column)
+        return [(f"panel:{p.name}", p) for p in files]
+
+
+class CodebookWriter(Writer):
+    """The codebook, as CSV and Markdown."""
+
+    name = "codebook"
+
+    def write(self, result, ctx):
+        from covextract.outputs.codebook import write_codebook
+
+        paths = ctx.paths
+        write_codebook(
+            result,
+            paths["codebook"],
+            markdown_path=paths["codebook_md"],
+            title=f"Codebook for {paths['table'].name}",
+        )
+        return [("codebook", paths["codebook"]), ("codebook_md", paths["codebook_md"])]
+
+
+class TableWriter(Writer):
+    """The study table with the new columns (CSV, Parquet or GeoPackage)."""
+
+    name = "table"
+
+    def write(self, result, ctx):
+        from covextract.outputs.table import table_format, write_table
+
+        path = ctx.paths["table"]
+        geoms, crs = ctx.geometry if table_format(path) == "gpkg" else (None, None)
+        write_table(result.table, path, geometry=geoms, crs=crs)
+        return [("table", path)]
+
+
+#: The outputs, in the order they are written; the manifest follows them all.
+WRITERS: list[Writer] = [PanelWriter(), CodebookWriter(), TableWriter()]
 
 
 def write_outputs(
@@ -41,38 +124,16 @@ def write_outputs(
     dict
         The written files by role.
     """
-    from covextract.outputs.codebook import write_codebook
     from covextract.outputs.manifest import write_manifest
-    from covextract.outputs.panel import write_panel
-    from covextract.outputs.table import table_format, write_table
+
+    ctx = WriteContext(paths, geometry)
     outputs = {k: paths[k] for k in ("table", "codebook", "codebook_md", "manifest")}
     written = []
-    if "panel" in paths:
-        panel = result.panel
-        if panel is None:
-            import pandas as pd
-
-            panel = pd.DataFrame(columns=[result.id_column, "column", "period_start"])
-        files = write_panel(paths["panel"], panel, id_column=result.id_column)
-        written += [(f"panel:{p.name}", p) for p in files]
-        outputs["panel"] = paths["panel"]
-        crash_point("after_panel")
-    write_codebook(
-        result,
-        paths["codebook"],
-        markdown_path=paths["codebook_md"],
-        title=f"Codebook for {paths['table'].name}",
-    )
-    crash_point("after_codebook")
-    geoms, crs = geometry if table_format(paths["table"]) == "gpkg" else (None, None)
-    write_table(result.table, paths["table"], geometry=geoms, crs=crs)
-    crash_point("after_table")
-    written = [
-        ("table", paths["table"]),
-        ("codebook", paths["codebook"]),
-        ("codebook_md", paths["codebook_md"]),
-        *written,
-    ]
+    for writer in WRITERS:
+        if writer.wanted(ctx):
+            written += writer.write(result, ctx)
+            crash_point(f"after_{writer.name}")
+    outputs.update({w.name: paths[w.name] for w in WRITERS if w.wanted(ctx)})
     if hashes is not None:
         inputs = [{**item, "sha256": hashes(item["path"])} for item in inputs]
     write_manifest(
@@ -81,7 +142,7 @@ def write_outputs(
         recipe_file=recipe.source_file,
         inputs=inputs,
         outputs=written,
-        layers={k: {n: v for n, v in m.items()} for k, m in result.layers.items()},
+        layers=result.layers,
         started=started,
         base_dir=recipe.base_dir,
         extra=manifest_extra,
