@@ -27,6 +27,7 @@ from affine import Affine
 from typer.testing import CliRunner
 
 from covextract.cli.app import app
+from covextract.covariates.naming import ordinal
 from covextract.errors import (
     ColumnCollisionError,
     GeometryRepairedWarning,
@@ -167,6 +168,19 @@ def _two_covariates_collide(s: Scenario) -> Path:
     )
 
 
+def _name_too_long(s: Scenario) -> Path:
+    # The third entry (covariates[2]) has a name that makes a 38-character column.
+    return s.write(
+        s.recipe(
+            covariates=[
+                {"layer": "ndvi", "stats": ["mean"]},
+                {"layer": "ndvi", "name": "ndvi_5km", "stats": ["mean"], "buffer_m": 5000},
+                {"layer": "ndvi", "name": "ndvi_greenness_2021_buffer", "stats": ["valid_share"]},
+            ]
+        )
+    )
+
+
 CASES = {
     "recipe file missing": Case(
         lambda s: s.folder / "no_such_recipe.yaml",
@@ -273,17 +287,32 @@ CASES = {
     "covariate column in the table": Case(
         _collides_with_table,
         ColumnCollisionError,
-        ["would write column 'ndvi_mean', which the study table already has", "Add name:"],
+        [
+            "the 1st covariate (layer 'ndvi') would write column 'ndvi_mean', which the study "
+            "table already has",
+            "Add name:",
+        ],
         key="covariates[0]",
     ),
     "two covariates collide": Case(
         _two_covariates_collide,
         ColumnCollisionError,
         [
-            "covariates 1 and 2 would both write column 'ndvi_mean'",
-            "Add a distinct name: to covariate 2",
+            "the 2nd covariate (layer 'ndvi') would write column 'ndvi_mean', which the 1st "
+            "covariate already writes",
+            "Add a distinct name: to the 2nd covariate (for example name: ndvi_2)",
         ],
         key="covariates[1]",
+    ),
+    "name makes a column too long": Case(
+        _name_too_long,
+        RecipeError,
+        [
+            "the 3rd covariate (layer 'ndvi'): column 'ndvi_greenness_2021_buffer_valid_share' "
+            "is 38 characters long",
+            "shorten its name: to at most 20 characters",
+        ],
+        key="covariates[2].name",
     ),
 }
 
@@ -330,6 +359,15 @@ def test_check_lists_the_problem_with_file_line_and_key(case, scenario):
     assert problems[0].file == str(path)
     if c.key is not None:
         assert problems[0].key == c.key
+    entry = re.match(r"covariates\[(\d+)\]", c.key or "")
+    if entry is not None:
+        # The key is the YAML path, counted from 0; the words count from 1, as
+        # ordinals, and name the entry the key points at first.
+        n = int(entry.group(1)) + 1
+        assert text.startswith(
+            f"{path}:{problems[0].line} {c.key}: the {ordinal(n)} covariate (layer "
+        ), text
+        assert not re.search(r"\bcovariates? \d", text), text
     if c.line_snippet is not None:
         assert problems[0].line == line_of(path, c.line_snippet)
         assert re.match(re.escape(f"{path}:{problems[0].line}") + "[ :]", text)
@@ -347,6 +385,14 @@ def test_cli_exits_1_with_the_message_on_stderr(case, scenario, folder_snapshot,
     assert "Traceback" not in result.output
     assert result.stdout == ""
     assert folder_snapshot(scenario.folder) == before
+
+
+def test_ordinals_count_entries_from_one():
+    words = [ordinal(n) for n in (1, 2, 3, 4, 10, 11, 12, 13, 21, 22, 23, 101, 111, 112)]
+    assert words == [
+        "1st", "2nd", "3rd", "4th", "10th", "11th", "12th", "13th",
+        "21st", "22nd", "23rd", "101st", "111th", "112th",
+    ]  # fmt: skip
 
 
 # ------------------------------------------------- several problems at once
@@ -367,7 +413,10 @@ def test_check_lists_every_problem_not_only_the_first(scenario):
     assert "column 'elevation' is not in the study table" in found["output.drop"]
     assert "not found" in found["layers.ndvi.file"]
     assert "has no CRS" in found["layers.lights.file"]
-    assert "covariates 1 and 3 would both write column 'ndvi_mean'" in found["covariates[2]"]
+    assert found["covariates[2]"].startswith(
+        f"{path}:{line_of(path, '- layer: ndvi', occurrence=2)} covariates[2]: the 3rd covariate "
+        "(layer 'ndvi') would write column 'ndvi_mean', which the 1st covariate already writes"
+    )
     lines = {p.key: p.line for p in problems}
     assert lines == {
         "output.drop": line_of(path, "drop:"),
