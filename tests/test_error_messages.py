@@ -38,6 +38,7 @@ from covextract.errors import (
     SuspectLocationWarning,
     TableError,
     UnitOutsideLayerWarning,
+    UnknownClassWarning,
 )
 from covextract.run import check_recipe, run
 
@@ -568,6 +569,35 @@ def test_empty_and_invalid_boundaries_are_repaired_or_flagged(scenario):
     others = out.drop(index=[repaired_id, empty_id])
     assert (others["ndvi_qa"] == "").all()
     assert result.summary["qa_counts"] == {"geometry_repaired": 1, "empty_geometry": 1}
+
+
+def test_unknown_classes_in_a_change_entry_name_no_column_it_does_not_write(scenario):
+    # The demo maps hold codes 12, 31 and 51 too; this class table leaves them out. A change
+    # entry writes no share_other column, so the warning must not point at one.
+    data = scenario.recipe()
+    classes = {11: "cropland", 21: "forest", 22: "scrub", 41: "built"}
+    data["layers"] = {
+        "cover_2021": {"file": "land_cover_2021.tif", "kind": "categorical", "classes": classes},
+        "cover_2015": {"file": "land_cover_2015.tif", "kind": "categorical", "classes": classes},
+    }
+    data["covariates"] = [
+        {
+            "layer": "cover_2021",
+            "name": "cover_change",
+            "since": "cover_2015",
+            "stats": ["transition"],
+            "pairs": [["forest", "cropland"]],
+        }
+    ]
+    path = scenario.write(data)
+    with pytest.warns(UnknownClassWarning) as record:
+        result = run(path, write=False)
+    assert result.columns == ["cover_change_forest_to_cropland", "cover_change_qa"]
+    messages = [str(w.message) for w in record if w.category is UnknownClassWarning]
+    assert messages == [
+        "layer 'cover_2021' holds codes not in its class table (12, 31, 51); they are counted "
+        "as 'other'. Add them to classes: to name them."
+    ]
 
 
 def test_the_demo_itself_does_not_warn(demo_dir, recwarn):
