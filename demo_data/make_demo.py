@@ -1265,9 +1265,10 @@ covariates:
   - layer: cover_2021
     name: cover_change          # columns cover_change_..., not cover_2021_...
     since: cover_2015           # compare with the 2015 map (same grid, same classes)
-    # transition_A_to_B: share of the buffer that was A in 2015 and is B in
-    # 2021 ("any" as A: any class other than B). net_change_<class>: 2021
-    # share minus 2015 share, one column per class and group.
+    # transition: cover_change_A_to_B, the share of the buffer that was A in
+    # 2015 and is B in 2021 ("any" as A: any class other than B). net_change:
+    # cover_change_net_<class>, 2021 share minus 2015 share, one column per
+    # class and group.
     stats: [transition, net_change]
     pairs: [[forest, cropland], [any, built]]
 

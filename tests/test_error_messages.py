@@ -27,6 +27,7 @@ from affine import Affine
 from typer.testing import CliRunner
 
 from covextract.cli.app import app
+from covextract.covariates.naming import ordinal
 from covextract.errors import (
     ColumnCollisionError,
     GeometryRepairedWarning,
@@ -37,6 +38,7 @@ from covextract.errors import (
     SuspectLocationWarning,
     TableError,
     UnitOutsideLayerWarning,
+    UnknownClassWarning,
 )
 from covextract.run import check_recipe, run
 
@@ -167,6 +169,19 @@ def _two_covariates_collide(s: Scenario) -> Path:
     )
 
 
+def _name_too_long(s: Scenario) -> Path:
+    # The third entry (covariates[2]) has a name that makes a 38-character column.
+    return s.write(
+        s.recipe(
+            covariates=[
+                {"layer": "ndvi", "stats": ["mean"]},
+                {"layer": "ndvi", "name": "ndvi_5km", "stats": ["mean"], "buffer_m": 5000},
+                {"layer": "ndvi", "name": "ndvi_greenness_2021_buffer", "stats": ["valid_share"]},
+            ]
+        )
+    )
+
+
 CASES = {
     "recipe file missing": Case(
         lambda s: s.folder / "no_such_recipe.yaml",
@@ -273,17 +288,32 @@ CASES = {
     "covariate column in the table": Case(
         _collides_with_table,
         ColumnCollisionError,
-        ["would write column 'ndvi_mean', which the study table already has", "Add name:"],
+        [
+            "the 1st covariate (layer 'ndvi') would write column 'ndvi_mean', which the study "
+            "table already has",
+            "Add name:",
+        ],
         key="covariates[0]",
     ),
     "two covariates collide": Case(
         _two_covariates_collide,
         ColumnCollisionError,
         [
-            "covariates 1 and 2 would both write column 'ndvi_mean'",
-            "Add a distinct name: to covariate 2",
+            "the 2nd covariate (layer 'ndvi') would write column 'ndvi_mean', which the 1st "
+            "covariate already writes",
+            "Add a distinct name: to the 2nd covariate (for example name: ndvi_2)",
         ],
         key="covariates[1]",
+    ),
+    "name makes a column too long": Case(
+        _name_too_long,
+        RecipeError,
+        [
+            "the 3rd covariate (layer 'ndvi'): column 'ndvi_greenness_2021_buffer_valid_share' "
+            "is 38 characters long",
+            "shorten its name: to at most 20 characters",
+        ],
+        key="covariates[2].name",
     ),
 }
 
@@ -330,6 +360,15 @@ def test_check_lists_the_problem_with_file_line_and_key(case, scenario):
     assert problems[0].file == str(path)
     if c.key is not None:
         assert problems[0].key == c.key
+    entry = re.match(r"covariates\[(\d+)\]", c.key or "")
+    if entry is not None:
+        # The key is the YAML path, counted from 0; the words count from 1, as
+        # ordinals, and name the entry the key points at first.
+        n = int(entry.group(1)) + 1
+        assert text.startswith(
+            f"{path}:{problems[0].line} {c.key}: the {ordinal(n)} covariate (layer "
+        ), text
+        assert not re.search(r"\bcovariates? \d", text), text
     if c.line_snippet is not None:
         assert problems[0].line == line_of(path, c.line_snippet)
         assert re.match(re.escape(f"{path}:{problems[0].line}") + "[ :]", text)
@@ -347,6 +386,14 @@ def test_cli_exits_1_with_the_message_on_stderr(case, scenario, folder_snapshot,
     assert "Traceback" not in result.output
     assert result.stdout == ""
     assert folder_snapshot(scenario.folder) == before
+
+
+def test_ordinals_count_entries_from_one():
+    words = [ordinal(n) for n in (1, 2, 3, 4, 10, 11, 12, 13, 21, 22, 23, 101, 111, 112)]
+    assert words == [
+        "1st", "2nd", "3rd", "4th", "10th", "11th", "12th", "13th",
+        "21st", "22nd", "23rd", "101st", "111th", "112th",
+    ]  # fmt: skip
 
 
 # ------------------------------------------------- several problems at once
@@ -367,7 +414,10 @@ def test_check_lists_every_problem_not_only_the_first(scenario):
     assert "column 'elevation' is not in the study table" in found["output.drop"]
     assert "not found" in found["layers.ndvi.file"]
     assert "has no CRS" in found["layers.lights.file"]
-    assert "covariates 1 and 3 would both write column 'ndvi_mean'" in found["covariates[2]"]
+    assert found["covariates[2]"].startswith(
+        f"{path}:{line_of(path, '- layer: ndvi', occurrence=2)} covariates[2]: the 3rd covariate "
+        "(layer 'ndvi') would write column 'ndvi_mean', which the 1st covariate already writes"
+    )
     lines = {p.key: p.line for p in problems}
     assert lines == {
         "output.drop": line_of(path, "drop:"),
@@ -519,6 +569,35 @@ def test_empty_and_invalid_boundaries_are_repaired_or_flagged(scenario):
     others = out.drop(index=[repaired_id, empty_id])
     assert (others["ndvi_qa"] == "").all()
     assert result.summary["qa_counts"] == {"geometry_repaired": 1, "empty_geometry": 1}
+
+
+def test_unknown_classes_in_a_change_entry_name_no_column_it_does_not_write(scenario):
+    # The demo maps hold codes 12, 31 and 51 too; this class table leaves them out. A change
+    # entry writes no share_other column, so the warning must not point at one.
+    data = scenario.recipe()
+    classes = {11: "cropland", 21: "forest", 22: "scrub", 41: "built"}
+    data["layers"] = {
+        "cover_2021": {"file": "land_cover_2021.tif", "kind": "categorical", "classes": classes},
+        "cover_2015": {"file": "land_cover_2015.tif", "kind": "categorical", "classes": classes},
+    }
+    data["covariates"] = [
+        {
+            "layer": "cover_2021",
+            "name": "cover_change",
+            "since": "cover_2015",
+            "stats": ["transition"],
+            "pairs": [["forest", "cropland"]],
+        }
+    ]
+    path = scenario.write(data)
+    with pytest.warns(UnknownClassWarning) as record:
+        result = run(path, write=False)
+    assert result.columns == ["cover_change_forest_to_cropland", "cover_change_qa"]
+    messages = [str(w.message) for w in record if w.category is UnknownClassWarning]
+    assert messages == [
+        "layer 'cover_2021' holds codes not in its class table (12, 31, 51); they are counted "
+        "as 'other'. Add them to classes: to name them."
+    ]
 
 
 def test_the_demo_itself_does_not_warn(demo_dir, recwarn):

@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from covextract.core.options import weighting_text
+from covextract.covariates.naming import entry_label
 from covextract.stats.registry import Statistic
 
 __all__ = ["Column", "Outcome", "PlanContext", "ComputeContext", "Covariate"]
@@ -246,8 +247,8 @@ class Covariate:
         return f"covariates[{self.index}]" + (f".{key}" if key else "")
 
     def label(self) -> str:
-        """How messages name this entry: ``covariate 3 (layer rain)``, counted from 1."""
-        return f"covariate {self.index + 1} (layer {self.layer_name!r})"
+        """How messages name this entry: ``the 3rd covariate (layer 'rain')``, counted from 1."""
+        return entry_label(self.index, self.layer_name)
 
     def layers_used(self) -> list[str]:
         """Every layer the covariate reads, its own first."""

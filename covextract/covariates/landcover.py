@@ -82,10 +82,13 @@ class LandCoverCovariate(Covariate):
             from covextract.errors import UnknownClassWarning
 
             codes = ", ".join(code_text(c) for c in outcome.unknown_codes[:10])
+            # Name the share_other column only when this entry writes one (a change entry
+            # without share: does not).
+            other = f"{self.prefix}_share_other"
+            where = f" in {other}" if any(c.name == other for c in self.columns) else ""
             warnings.warn(
                 f"layer {self.layer_name!r} holds codes not in its class table ({codes}); they "
-                f"are counted as 'other' in {self.prefix}_share_other. Add them to classes: to "
-                "name them.",
+                f"are counted as 'other'{where}. Add them to classes: to name them.",
                 UnknownClassWarning,
                 stacklevel=user_stacklevel(),
             )

@@ -25,12 +25,28 @@ import re
 
 from covextract.errors import ColumnCollisionError
 
-__all__ = ["MAX_LENGTH", "LEGAL", "qa_stem", "assign_names"]
+__all__ = ["MAX_LENGTH", "LEGAL", "ordinal", "entry_label", "qa_stem", "assign_names"]
 
 #: The longest column name common statistics packages accept.
 MAX_LENGTH = 32
 #: A legal column name: letters, digits and underscores, starting with a letter.
 LEGAL = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+
+
+def ordinal(n: int) -> str:
+    """``1st``, ``2nd``, ``3rd``, ``11th``, ``22nd``: how messages count recipe entries.
+
+    A problem's key is the YAML path, counted from 0 (``covariates[2]``); the
+    words after it count as people do, from 1, and say so by being ordinals
+    (``the 3rd covariate``), so the two numbers in one line cannot be mixed up.
+    """
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
+def entry_label(index: int, layer_name: str) -> str:
+    """How messages name a covariate entry: ``the 3rd covariate (layer 'rain')`` for index 2."""
+    return f"the {ordinal(index + 1)} covariate (layer {layer_name!r})"
 
 
 def qa_stem(cov) -> str:
@@ -52,8 +68,9 @@ def assign_names(covariates, existing, problem) -> None:
 
     Problems (reported through ``problem(exc, key)``): a column that is not a
     legal identifier or longer than :data:`MAX_LENGTH`, a column the study
-    table already has, two covariates writing the same column. Entries are
-    numbered as the user counts them, from 1.
+    table already has, two covariates writing the same column. Messages name
+    entries by ordinals counted from 1 (:func:`entry_label`); the key given
+    with each problem is the YAML path, counted from 0.
     """
     stems = {}
     for cov in covariates:
@@ -82,10 +99,12 @@ def assign_names(covariates, existing, problem) -> None:
                 )
             if error is None and col in owner:
                 other = owner[col]
+                # Name the entry the problem's key points at first, so "covariates[2]:"
+                # is followed by "the 3rd covariate", never by another entry's number.
                 error = ColumnCollisionError(
-                    f"covariates {other.index + 1} and {cov.index + 1} would both write column "
-                    f"{col!r} (layer {cov.layer_name!r}). Add a distinct "
-                    f"name: to covariate {cov.index + 1} (for example name: "
+                    f"{cov.label()} would write column {col!r}, which the "
+                    f"{ordinal(other.index + 1)} covariate already writes. Add a distinct "
+                    f"name: to the {ordinal(cov.index + 1)} covariate (for example name: "
                     f"{cov.layer_name}_{cov.index + 1})."
                 )
             if error is not None:

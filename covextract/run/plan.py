@@ -13,7 +13,7 @@ from pathlib import Path
 
 from covextract.core.messages import missing_column, user_stacklevel
 from covextract.covariates import Covariate, PlanContext, kind_for
-from covextract.covariates.naming import assign_names
+from covextract.covariates.naming import assign_names, entry_label
 from covextract.errors import (
     CovextractError,
     OutputError,
@@ -186,7 +186,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         kind = kind_for(spec, layer)
         if kind is None:
             problem(
-                f"covariate {i + 1} on layer {spec.layer!r}: no covariate kind takes this entry; "
+                f"{entry_label(i, spec.layer)}: no covariate kind takes this entry; "
                 "a series layer needs one of periods:, before:, trend: or change:",
                 f"covariates[{i}]",
             )
