@@ -137,7 +137,9 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         if not collect:
             if isinstance(exc_or_msg, BaseException):
                 raise exc_or_msg
-            raise RecipeError([RecipeProblem(exc_or_msg, key=key, file=file)])
+            raise RecipeError(
+                [RecipeProblem(exc_or_msg, key=key, file=file, line=_line(recipe, key))]
+            )
         if isinstance(exc_or_msg, RecipeError):
             problems.extend(exc_or_msg.problems)
         else:

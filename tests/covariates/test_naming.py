@@ -89,8 +89,10 @@ def test_two_entries_writing_one_column_name_both_counted_from_one(demo):
         [{"layer": "ndvi", "stats": ["mean"]}, {"layer": "ndvi", "stats": ["mean", "max"]}],
     )
     assert len(problems) == 1
-    assert "covariates 1 and 2 would both write column 'ndvi_mean'" in problems[0]
-    assert "Add a distinct name: to covariate 2" in problems[0]
+    assert (
+        "the 2nd covariate (layer 'ndvi') would write column 'ndvi_mean', which the 1st "
+        "covariate already writes. Add a distinct name: to the 2nd covariate"
+    ) in problems[0]
 
 
 def test_a_name_wins_and_drops_the_window_suffix(demo):
