@@ -301,7 +301,7 @@ for _stat in (
         "continuous",
         "coefficient of variation: weighted standard deviation / |weighted mean| of valid "
         "pixels (missing where the mean is 0)",
-        _fixed(FRACTION.replace(" (0-1)", " (std / |mean|)")),
+        _fixed("none (ratio std / |mean|, may exceed 1)"),
         sums=("w", "mean", "m2"),
         finish=_cv,
     ),
@@ -428,7 +428,7 @@ for _stat in (
         "transition",
         "categorical",
         "share of the unit's area that was {source_class} in layer {since} and is "
-        "{target_class} in this layer, on pixels valid in both",
+        "{target_class} in layer {layer}, on pixels valid in both",
         _fixed(FRACTION),
         sums=("class_pair_areas",),
     ),
@@ -436,8 +436,8 @@ for _stat in (
         "net_change",
         "net_change",
         "categorical",
-        "share of {target} in this layer minus its share in layer {since}, on pixels valid "
-        "in both",
+        "share of {target} in layer {layer} minus its share in layer {since}, on pixels "
+        "valid in both",
         _fixed("difference of fractions (-1 to 1)"),
         sums=("class_pair_areas",),
     ),
@@ -524,7 +524,7 @@ for _stat in (
         "category",
         "category",
         "anomaly",
-        "WMO class of the SPI in the column before (half-open intervals): extremely wet >= 2, "
+        "WMO class of the SPI in column {column} (half-open intervals): extremely wet >= 2, "
         "very wet [1.5, 2), moderately wet [1, 1.5), near normal (-1, 1), moderately dry "
         "(-1.5, -1], severely dry (-2, -1.5], extremely dry <= -2",
         _fixed(LABEL),
