@@ -367,7 +367,7 @@ for _stat in (
         "value",
         "value",
         "point",
-        "value of the raster at the point ({rule}); missing when that pixel is nodata",
+        "value of the raster at the point ({rule}); missing when no pixel it reads is valid",
         _same,
         sums=("w", "mean"),
         finish=_where_has(lambda acc, ctx: acc.mean),
@@ -376,7 +376,8 @@ for _stat in (
         "valid_share",
         "valid_share",
         "point",
-        "1 when the value at the point is valid, else 0",
+        "share of the point's weight on valid pixels (nearest: 1 when its pixel is valid, "
+        "else 0)",
         _fixed(FRACTION),
         sums=("w_all", "w_base"),
         finish=lambda acc, ctx: ctx.valid_share,
