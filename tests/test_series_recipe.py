@@ -105,7 +105,7 @@ def test_window_before_each_visit_equals_a_brute_force_sum(folder):
     assert set(one["column"]) == {"rain_mean"}
     rows = {r["column"]: r for r in result.codebook}
     assert (
-        "the 3 calendar month(s) ending 1 month(s) before the month of the record's date (visit)"
+        "the 3 calendar months ending with the month 1 month before the month of the record's date (visit)"
         in rows["rain_mean_sum3m_lag1"]["definition"]
     )
     assert rows["rain_mean_sum3m_lag1"]["unit_of_measure"] == "mm"

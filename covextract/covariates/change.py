@@ -54,12 +54,15 @@ class ChangeCovariate(Covariate):
         self.columns = []
         for s in self.stats:
             col = self.column(f"{self.prefix}_{s.column}{tail}", s, self.layer_unit)
-            col.definition = f"{col.definition}, of the {how}"
+            # say first what is summarised (a change), then how (the statistic)
+            col.definition = f"{how}, summarised over the unit by its {s.name}: {col.definition}"
             self.columns.append(col)
         rel_tail = "" if self.named else f"_{self.suffix[len('change_'):]}"
-        self.columns.append(
-            self.column(f"{self.prefix}_relchange{rel_tail}", registry.get("relchange", "change"), "")
+        rel = self.column(
+            f"{self.prefix}_relchange{rel_tail}", registry.get("relchange", "change"), ""
         )
+        rel.definition = f"{rel.definition}; the change is the {how}"
+        self.columns.append(rel)
         return True
 
     def compute(self, ctx: ComputeContext) -> Outcome:

@@ -9,7 +9,6 @@ from __future__ import annotations
 __all__ = ["codebook_rows", "source_text"]
 
 
-
 def _stored_text(src) -> str:
     nd = ", ".join(repr(v) for v in dict.fromkeys(src.nodata)) or "none declared"
     return (
@@ -54,7 +53,6 @@ def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
     from covextract.engine.zonal import QA_CODES
     from covextract.units.build import QA_CODES as UNIT_QA_CODES
 
-    recipe = plan.recipe
     layer = cov.layer
     src = plan.sources[cov.layer_name]
     units = plan.unit_sets[cov.unit_key]
@@ -77,6 +75,15 @@ def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
         "citation": layer.citation or "",
         "license": layer.license or "",
     }
+    # not written to the CSV: what the methods paragraph and the Markdown need
+    spec = cov.spec
+    roles = {
+        getattr(spec, "since", None): "its earlier layer (since)",
+        getattr(spec, "weight_by", None): "its weight layer (weight_by)",
+    }
+    base["reads"] = {n: roles.get(n, "its layer") for n in cov.layers_used()}
+    base["covariate"] = cov.prefix
+    transform = getattr(cov, "transform", None)
     rows = []
     for col in cov.columns:
         rows.append(
@@ -88,6 +95,7 @@ def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
                 "definition": col.definition,
                 "unit_of_measure": col.unit,
                 "qa_codes": "",
+                "cites": _cites(col.statistic, transform),
             }
         )
     if cov.qa_column:
@@ -103,4 +111,44 @@ def codebook_rows(cov, plan, learnt: dict) -> list[dict]:
                 "qa_codes": "; ".join(f"{k}: {v}" for k, v in codes.items()),
             }
         )
+    panel = [c.name for c in cov.columns if c.where == "panel"]
+    if panel:
+        # The long panel has one qa column for all its rows; each covariate with panel
+        # columns describes it for its own rows (column "qa", output "long panel").
+        rows.append(
+            {
+                **base,
+                "column": "qa",
+                "output": "long panel",
+                "statistic": "qa",
+                "definition": "reason codes of the unit in that period, separated by ';', empty "
+                f"when all is well; in the long panel's rows of {', '.join(panel)}",
+                "unit_of_measure": "none (text codes)",
+                "qa_codes": "; ".join(f"{k}: {v}" for k, v in QA_CODES.items()),
+                "panel_columns": panel,
+            }
+        )
     return rows
+
+
+#: Statistic (or series transform) -> key of the published method it uses, for the
+#: references of the codebook's methods paragraph.
+_CITED = {
+    "ols": "sen",
+    "sen": "sen",
+    "p": "sen",
+    "shannon": "shannon",
+    "spi": "spi",
+    "category": "spi",
+    "allocated": "allocated",
+    "predicted": "predicted",
+    "lower": "predicted",
+    "upper": "predicted",
+}
+
+
+def _cites(stat, transform) -> tuple:
+    keys = [_CITED.get(stat.name)]
+    if transform is not None:
+        keys.append(_CITED.get(transform.name))
+    return tuple(dict.fromkeys(k for k in keys if k))

@@ -71,7 +71,14 @@ class LandCoverCovariate(Covariate):
         for suffix, stat_name in self.suffixes:
             stat = registry.get(stat_name, "categorical")
             name, fill = self._name_and_fill(suffix, stat_name)
-            col = self.column(f"{self.prefix}_{name}", stat, self.layer_unit, since=self.since, **fill)
+            col = self.column(
+                f"{self.prefix}_{name}",
+                stat,
+                self.layer_unit,
+                since=self.since,
+                layer=self.layer_name,
+                **fill,
+            )
             self.columns.append(col)
         return True
 

@@ -22,6 +22,11 @@ __all__ = ["SeriesCovariate", "PeriodsCovariate", "long_frame", "panel_rows"]
 #: Codes about a unit's place on the grid hold for every period.
 STRUCTURAL_CODES = ("outside_layer", "partly_outside", "missed_by_centers")
 _TAGS = {"difference": "anom", "percent": "pct", "zscore": "z"}
+_ANOMALY_WORDS = {
+    "difference": "anomaly (value minus normal)",
+    "percent": "percent of normal",
+    "zscore": "z-score against the normal",
+}
 
 
 def long_frame(values: np.ndarray, periods) -> pd.DataFrame:
@@ -190,13 +195,27 @@ class SeriesCovariate(Covariate):
         return out[col].to_numpy(dtype=np.float64).reshape(n, m)
 
     def method_text(self, plan) -> str:
+        from covextract.sources.base import step_adjective
+
         s = self.series
         text = (
-            f"statistics computed for each of the {len(s.periods)} periods of the series "
-            f"({s.step.text}) with the same weights"
+            f"statistics computed for each of the {len(s.periods)} {step_adjective(s.step)} "
+            "periods of the series with the same weights"
         )
-        if self.anomaly is not None and self.anomaly.kind != "spi":
-            text += f"; anomaly per unit and calendar month against {self.anomaly.baseline}"
+        a = self.anomaly
+        if a is not None and a.kind == "spi":
+            text += (
+                f"; SPI-{a.months} of each unit's series: {a.months}-month totals, a gamma "
+                "distribution fitted per calendar month over the baseline "
+                f"{a.baseline} (fewer than {a.min_years or 10} valid baseline years: missing, "
+                "QA short_baseline)"
+            )
+        elif a is not None:
+            text += (
+                f"; {_ANOMALY_WORDS[a.kind]} per unit and calendar month against the baseline "
+                f"{a.baseline} (fewer than {a.min_years or 5} valid baseline years: missing, QA "
+                "short_baseline)"
+            )
         return text
 
     def qa_codes(self) -> dict:

@@ -81,6 +81,10 @@ class WindowCovariate(SeriesCovariate):
                 if self.named
                 else f"{self.prefix}_{self.stat_label(s)}_{self.suffix}"
             )
+            threshold = None
+            if before.threshold is not None:
+                # the threshold is in the unit of the per-period value (mm, percent of normal)
+                threshold = f"{before.threshold:g}" + (f" {unit}" if unit else "")
             col = self.column(
                 name,
                 combine,
@@ -88,27 +92,34 @@ class WindowCovariate(SeriesCovariate):
                 window=self._window_text(),
                 inner=text,
                 periods=noun,
-                threshold=before.threshold,
+                threshold=threshold,
             )
             self.columns.append(col)
             if self.tag and self.tag.startswith("spi"):
                 cat = registry.get("category", "anomaly")
-                self.columns.append(self.column(f"{name}_cat", cat, ""))
+                self.columns.append(self.column(f"{name}_cat", cat, "", column=name))
         return True
 
     def _window_text(self) -> str:
+        """The window in words: its length, where it ends, and the date it is counted from."""
         b = self.before
+
+        def n(count, word):
+            return f"{count} {word}" + ("" if count == 1 else "s")
+
         if b.months is not None:
-            text = (
-                f"the {b.months} calendar month(s) ending {b.lag_months} month(s) before the "
-                f"month of the record's date ({self.date_column})"
+            end = (
+                "the month of the record's date"
+                if b.lag_months == 0
+                else f"the month {n(b.lag_months, 'month')} before the month of the record's date"
             )
-        else:
-            text = (
-                f"the {b.days} day(s) ending {b.lag_days} day(s) before the record's date "
-                f"({self.date_column})"
-            )
-        return text
+            return f"the {n(b.months, 'calendar month')} ending with {end} ({self.date_column})"
+        end = (
+            "the record's date"
+            if b.lag_days == 0
+            else f"the day {n(b.lag_days, 'day')} before the record's date"
+        )
+        return f"the {n(b.days, 'day')} ending with {end} ({self.date_column})"
 
     def assemble(self, plan, periods, vals, qa_pp) -> Outcome:
         from covextract.derive.time import window_values

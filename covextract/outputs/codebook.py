@@ -12,7 +12,13 @@ from pathlib import Path
 
 from covextract.io.writers import atomic_write_text
 
-__all__ = ["CODEBOOK_FIELDS", "CAUTIONS", "write_codebook", "codebook_markdown", "methods_paragraph"]
+__all__ = [
+    "CODEBOOK_FIELDS",
+    "CAUTIONS",
+    "write_codebook",
+    "codebook_markdown",
+    "methods_paragraph",
+]
 
 CODEBOOK_FIELDS = [
     "column",
@@ -92,44 +98,48 @@ REFERENCES = {
 
 
 def methods_paragraph(result) -> tuple[str, list[str]]:
-    """A methods paragraph a study can adapt, and the references it cites."""
+    """A methods paragraph a study can adapt, and the references it cites.
+
+    Built from the codebook rows (pixel rules, unit shapes, each covariate's
+    method) and the run's layer metadata; the references are those of the
+    published methods the run used, found from each row's statistic and
+    series transform (``cites``) and each layer's band-math index, not from
+    the wording of any text.
+    """
     from covextract.core.version import __version__
 
     rows = [r for r in result.codebook if r.get("statistic") != "qa"]
-    layers = sorted({r["layer"] for r in rows})
+    layers = list(dict.fromkeys([*result.layers, *(r["layer"] for r in rows)]))
     shapes = sorted({r["unit_shape"] for r in rows})
-    rules = sorted({r["pixel_rule"].split(":")[0] for r in rows})
+    rules = sorted({r["pixel_rule"] for r in rows})
     weighting = sorted({r["area_weighting"] for r in rows})
-    stats = {r["statistic"] for r in rows}
-    methods = " ".join(sorted({r["method"] for r in rows if r.get("method")}))
-    refs = []
     text = (
         f"Environmental covariates were extracted with covextract {__version__} from "
         f"{len(layers)} raster layer{'s' if len(layers) != 1 else ''} ({', '.join(layers)}) "
         f"for {result.summary.get('units', '?')} study units ({'; '.join(shapes)}). Rasters were "
         "not resampled: each unit was projected to the raster's grid, and pixels were counted "
-        f"by the rule {' / '.join(rules)} (overlap: the exact fraction of each pixel inside "
-        "the unit; center: pixels whose centre lies inside; touched: every pixel the unit "
-        "touches). Area weighting by each pixel's true ground area on the WGS84 ellipsoid: "
-        f"{'; '.join(weighting)}. Nodata and declared fill values were excluded before any "
-        "statistic; the share of each unit with valid pixels is reported."
+        f"by the rule {'; '.join(rules)}. Area weighting by each pixel's true ground area on "
+        f"the WGS84 ellipsoid: {'; '.join(weighting)}. Nodata and declared fill values were "
+        "excluded before any statistic; units with few or no valid pixels are flagged in "
+        "their covariate's QA column."
     )
+    cites = set()
     if any("buffer" in s for s in shapes):
         text += " Buffers are geodesic circles drawn on the ellipsoid."
-        refs.append(REFERENCES["buffer"])
-    if methods:
-        text += f" Details by covariate: {methods}"
-    for key in ("ndvi", "evi"):
-        if any(f"'{key}'" in r["nodata_handling"] for r in rows):
-            refs.append(REFERENCES[key])
-    if stats & {"spi", "category"}:
-        refs.append(REFERENCES["spi"])
-    if stats & {"sen", "ols", "p"}:
-        refs.append(REFERENCES["sen"])
-    for key in ("shannon", "allocated", "predicted"):
-        if key in stats:
-            refs.append(REFERENCES[key])
-    return text, refs
+        cites.add("buffer")
+    # one sentence per covariate (two covariates with the same name and method: one)
+    details = {}
+    for r in rows:
+        cites.update(r.get("cites", ()))
+        if r.get("method"):
+            details.setdefault((r.get("covariate") or r["layer"], r["method"]), None)
+    for name, method in details:
+        text += f" Covariate {name}: {method.rstrip('.')}."
+    for name in layers:
+        index = result.layers.get(name, {}).get("index")
+        if index in REFERENCES:
+            cites.add(index)
+    return text, [ref for key, ref in REFERENCES.items() if key in cites]
 
 
 def _column_summary(result, row) -> str:
@@ -142,7 +152,10 @@ def _column_summary(result, row) -> str:
         panel = result.panel
         if panel is None or panel.empty:
             return "no rows"
-        values = panel.loc[panel["column"] == name, "value"]
+        if row.get("statistic") == "qa":
+            values = panel.loc[panel["column"].isin(row.get("panel_columns", ())), "qa"]
+        else:
+            values = panel.loc[panel["column"] == name, "value"]
     elif name in result.table.columns:
         values = result.table[name]
     else:
@@ -174,10 +187,11 @@ def codebook_markdown(result, *, title: str = "Codebook") -> str:
     by_layer: dict = {}
     for row in result.codebook:
         by_layer.setdefault(row["layer"], row)
-    for name, row in by_layer.items():
+    for name in dict.fromkeys([*by_layer, *result.layers]):
         meta = result.layers.get(name, {})
         cols = [r["column"] for r in result.codebook if r["layer"] == name]
-        parts = [f"**{name}**: {row['source_file']}"]
+        reads = meta.get("reads") or by_layer.get(name, {}).get("source_file", "")
+        parts = [f"**{name}**: {reads}"]
         if meta.get("unit"):
             parts.append(f"unit {meta['unit']}")
         if meta.get("crs"):
@@ -185,7 +199,15 @@ def codebook_markdown(result, *, title: str = "Codebook") -> str:
         for key in ("source", "version", "citation", "license"):
             if meta.get(key):
                 parts.append(f"{key} {meta[key]}")
-        parts.append(f"{len(cols)} column{'s' if len(cols) != 1 else ''}")
+        if cols:
+            parts.append(f"{len(cols)} column{'s' if len(cols) != 1 else ''}")
+        else:
+            users = {
+                f"{r.get('covariate') or r['layer']} as {r['reads'][name]}": None
+                for r in result.codebook
+                if name in (r.get("reads") or {})
+            }
+            parts.append("no columns of its own; read by " + (", ".join(users) or "a covariate"))
         lines.append("- " + "; ".join(_md_cell(p) for p in parts))
     text, refs = methods_paragraph(result)
     lines += ["", "## Methods (a paragraph to adapt)", "", text, ""]

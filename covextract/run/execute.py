@@ -44,7 +44,9 @@ class RunResult:
     units : dict
         The unit sets (ids, geometries in their own CRS, QA) by unit key.
     layers : dict
-        Per layer: grid metadata and the recipe's source, version, citation, license.
+        Per layer: grid metadata, unit, what it reads (``reads``), its band-math
+        index (``index``, empty for none) and the recipe's source, version,
+        citation, license.
     id_column : str
         The study's id column name.
     """
@@ -170,6 +172,10 @@ class Assembly:
                 "transform": list(src.grid.transform)[:6],
                 "area_varies": bool(src.grid.area_varies),
                 "unit": recipe.layers[name].unit or "",
+                # what the layer reads (no private folders) and its band-math index, for the
+                # codebook's layer summary and the methods paragraph's references
+                "reads": plan.layers[name].describe(),
+                "index": recipe.layers[name].index or "",
                 "source": recipe.layers[name].source or "",
                 "version": recipe.layers[name].version or "",
                 "citation": recipe.layers[name].citation or "",

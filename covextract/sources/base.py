@@ -10,12 +10,13 @@ identity of manifests and refresh fingerprints) and what it reads, in one
 sentence for the codebook (:meth:`LayerSource.describe`).
 
 Paths in descriptions never show folders outside the recipe's folder: a path
-the recipe wrote relative is shown as written, an absolute one relative to
-the recipe's folder when inside it, and by its file name alone otherwise.
+inside the recipe's folder is shown relative to it; a file outside it by its
+file name and content hash, as the manifest names it.
 """
 
 from __future__ import annotations
 
+import functools
 import os
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -117,18 +118,40 @@ def shown_path(path_text, base_dir) -> str:
     Returns
     -------
     str
-        With forward slashes: a relative path as written (normalised); an
-        absolute path relative to ``base_dir`` when inside it, else its file
-        name alone.
+        With forward slashes, the path relative to ``base_dir`` when it lies
+        inside it (a relative path as written, normalised). A file outside it
+        (absolute, or relative with ``..`` leading out) is shown by its file
+        name and content hash, ``rain.tif (sha256 1a2b3c4d5e6f)``, as the
+        manifest shows it; a template outside it by its file-name part alone.
     """
     text = os.fspath(path_text)
     path = Path(text).expanduser()
     if not path.is_absolute():
-        return Path(os.path.normpath(text)).as_posix()
+        rel = os.path.normpath(text)
+        if rel != ".." and not rel.startswith(".." + os.sep):
+            return Path(rel).as_posix()
+        path = Path(base_dir) / path
     rel = os.path.relpath(os.path.abspath(path), os.path.abspath(Path(base_dir)))
     if rel == ".." or rel.startswith(".." + os.sep) or os.path.isabs(rel):
-        return path.name
+        return _outside_name(os.path.abspath(path), os.path.abspath(base_dir))
     return Path(rel).as_posix()
+
+
+def _outside_name(path: str, base_dir: str) -> str:
+    """File name and short content hash of a file outside the recipe's folder."""
+    if "{" in Path(path).name or not os.path.isfile(path):
+        return Path(path).name
+    st = os.stat(path)
+    return _shareable(path, base_dir, st.st_size, st.st_mtime_ns)
+
+
+@functools.lru_cache(maxsize=256)
+def _shareable(path: str, base_dir: str, size: int, mtime_ns: int) -> str:
+    # size and mtime are in the key so that a changed file is hashed again; every
+    # covariate on a layer asks, and hashing reads the whole file
+    from covextract.io.paths import shareable_path
+
+    return shareable_path(path, base_dir)
 
 
 def step_adjective(step) -> str:

@@ -285,7 +285,7 @@ for _stat in (
         "continuous",
         "coefficient of variation: weighted standard deviation / |weighted mean| of valid "
         "pixels (missing where the mean is 0)",
-        _fixed(FRACTION.replace(" (0-1)", " (std / |mean|)")),
+        _fixed("none (ratio std / |mean|, may exceed 1)"),
         sums=("w", "mean", "m2"),
         finish=_cv,
     ),
@@ -351,7 +351,7 @@ for _stat in (
         "value",
         "value",
         "point",
-        "value of the raster at the point ({rule}); missing when that pixel is nodata",
+        "value of the raster at the point ({rule}); missing when no pixel it reads is valid",
         _same,
         sums=("w", "mean"),
         finish=_where_has(lambda acc, ctx: acc.mean),
@@ -360,7 +360,8 @@ for _stat in (
         "valid_share",
         "valid_share",
         "point",
-        "1 when the value at the point is valid, else 0",
+        "share of the point's weight on valid pixels (nearest: 1 when its pixel is valid, "
+        "else 0)",
         _fixed(FRACTION),
         sums=("w_all", "w_base"),
         finish=lambda acc, ctx: ctx.valid_share,
@@ -412,7 +413,7 @@ for _stat in (
         "transition",
         "categorical",
         "share of the unit's area that was {source_class} in layer {since} and is "
-        "{target_class} in this layer, on pixels valid in both",
+        "{target_class} in layer {layer}, on pixels valid in both",
         _fixed(FRACTION),
         sums=("class_pair_areas",),
     ),
@@ -420,8 +421,8 @@ for _stat in (
         "net_change",
         "net_change",
         "categorical",
-        "share of {target} in this layer minus its share in layer {since}, on pixels valid "
-        "in both",
+        "share of {target} in layer {layer} minus its share in layer {since}, on pixels "
+        "valid in both",
         _fixed("difference of fractions (-1 to 1)"),
         sums=("class_pair_areas",),
     ),
@@ -508,7 +509,7 @@ for _stat in (
         "category",
         "category",
         "anomaly",
-        "WMO class of the SPI in the column before (half-open intervals): extremely wet >= 2, "
+        "WMO class of the SPI in column {column} (half-open intervals): extremely wet >= 2, "
         "very wet [1.5, 2), moderately wet [1, 1.5), near normal (-1, 1), moderately dry "
         "(-1.5, -1], severely dry (-2, -1.5], extremely dry <= -2",
         _fixed(LABEL),

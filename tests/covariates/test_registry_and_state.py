@@ -65,7 +65,7 @@ def test_cv_is_one_registry_entry_and_computes_std_over_mean(demo_dir):
     expected = t["ndvi_std"].to_numpy(float) / np.abs(t["ndvi_mean"].to_numpy(float))
     np.testing.assert_allclose(t["ndvi_cv"].to_numpy(float), expected, rtol=1e-12)
     row = {r["column"]: r for r in result.codebook}["ndvi_cv"]
-    assert row["unit_of_measure"] == "fraction (std / |mean|)"
+    assert row["unit_of_measure"] == "none (ratio std / |mean|, may exceed 1)"
 
 
 def test_every_demo_column_is_legal_and_short(demo_dir):

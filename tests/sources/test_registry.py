@@ -209,7 +209,7 @@ def test_reader_errors_pass_through(folder):
     [
         ("rasters/ndvi.tif", "rasters/ndvi.tif"),
         ("./rasters/../rasters/ndvi.tif", "rasters/ndvi.tif"),
-        ("../shared/ndvi.tif", "../shared/ndvi.tif"),  # as the recipe wrote it
+        ("../shared/ndvi.tif", "ndvi.tif"),  # relative but outside: no folder names
         ("{base}/rasters/ndvi.tif", "rasters/ndvi.tif"),  # absolute, inside the folder
         ("/data/private/alice/ndvi.tif", "ndvi.tif"),  # absolute, outside: name only
     ],
