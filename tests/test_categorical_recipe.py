@@ -89,12 +89,8 @@ def test_categorical_recipe_columns_and_values(scene):
     # B sits in the corner with the unknown code 7
     assert float(t.iloc[1]["cover_2020_share_other"]) > 0
     # change: net change of built equals forest -> built (nothing else became built)
-    assert_allclose(
-        float(a["change_net_built"]), float(a["change_forest_to_built"])
-    )
-    assert_allclose(
-        float(a["change_any_to_built"]), float(a["change_forest_to_built"])
-    )
+    assert_allclose(float(a["change_net_built"]), float(a["change_forest_to_built"]))
+    assert_allclose(float(a["change_any_to_built"]), float(a["change_forest_to_built"]))
     assert float(a["change_net_forest"]) < 0
     rows = {r["column"]: r for r in result.codebook}
     assert rows["cover_2020_share_forest"]["definition"] == (

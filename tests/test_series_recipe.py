@@ -94,7 +94,10 @@ def test_window_before_each_visit_equals_a_brute_force_sum(folder):
     ]
     assert t["wet_mean"][0] == sum(v > 90 for v in six)
     # B: the window (Nov 2018 - Jan 2019) reaches before the series; C has no date
-    assert np.isnan(t["rain_mean_sum3m_lag1"][1]) and "window_outside_series" in t["rain_sum3m_lag1_qa"][1]
+    assert (
+        np.isnan(t["rain_mean_sum3m_lag1"][1])
+        and "window_outside_series" in t["rain_sum3m_lag1_qa"][1]
+    )
     assert np.isnan(t["rain_mean_sum3m_lag1"][2]) and "no_date" in t["rain_sum3m_lag1_qa"][2]
     # the panel: one Parquet file per period, keyed by unit, column and period
     files = sorted((folder / "out" / "panel").glob("*.parquet"))

@@ -57,7 +57,7 @@ class ChangeCovariate(Covariate):
             # say first what is summarised (a change), then how (the statistic)
             col.definition = f"{how}, summarised over the unit by its {s.name}: {col.definition}"
             self.columns.append(col)
-        rel_tail = "" if self.named else f"_{self.suffix[len('change_'):]}"
+        rel_tail = "" if self.named else f"_{self.suffix[len('change_') :]}"
         rel = self.column(
             f"{self.prefix}_relchange{rel_tail}", registry.get("relchange", "change"), ""
         )
@@ -83,7 +83,9 @@ class ChangeCovariate(Covariate):
         base = zonal_units(
             ChangeSource(later, earlier, part="earlier"), geoms, [parse_stat("mean")], **kw
         )
-        values = {c.name: res.values[s.name] for s, c in zip(self.stats, self.columns, strict=False)}
+        values = {
+            c.name: res.values[s.name] for s, c in zip(self.stats, self.columns, strict=False)
+        }
         with np.errstate(invalid="ignore", divide="ignore"):
             rel = res.values["mean"] / base.values["mean"]
         values[self.columns[-1].name] = np.where(np.isfinite(rel), rel, np.nan)

@@ -63,7 +63,8 @@ class LandCoverCovariate(Covariate):
         self.suffixes = categorical_columns(self.spec.stats, self.table, self.groups, self.pairs)
         self.stats = [registry.get(s, "categorical") for s in dict.fromkeys(self.spec.stats)]
         legend = "; ".join(
-            f"{code_text(c)} = {lbl}" for c, lbl in zip(self.table.codes, self.table.labels, strict=True)
+            f"{code_text(c)} = {lbl}"
+            for c, lbl in zip(self.table.codes, self.table.labels, strict=True)
         )
         groups = "; ".join(f"{g} = {', '.join(map(str, c))}" for g, c in self.groups.items())
         self.legend = f"class table: {legend}" + (f"; groups: {groups}" if groups else "")

@@ -123,8 +123,8 @@ def _name_problem(cov, col: str, names) -> str | None:
         )
     if len(col) > MAX_LENGTH:
         if cov.named:
-            longest = max(len(n) for n in names)
-            how = f"shorten its name: to at most {MAX_LENGTH - (longest - len(cov.prefix))} characters"
+            room = MAX_LENGTH - (max(len(n) for n in names) - len(cov.prefix))
+            how = f"shorten its name: to at most {room} characters"
         else:
             how = (
                 "give it a short name: (named columns are <name>_<statistic>, see the naming "

@@ -88,7 +88,10 @@ class ReallocateCovariate(Covariate):
             if spec.by == "light"
             else f"lit area (pixels with light > {spec.threshold!r})"
         )
-        unit = getattr(spec.totals, "unit", None) or f"as column {spec.totals.column!r} of the totals file"
+        unit = (
+            getattr(spec.totals, "unit", None)
+            or f"as column {spec.totals.column!r} of the totals file"
+        )
         col = self.column(f"{self.prefix}_allocated", stat, unit, how=how)
         col.definition += (
             f"; totals from {spec.totals.file} (column {spec.totals.column!r}), zones from "

@@ -41,7 +41,9 @@ class TrendCovariate(SeriesCovariate):
             base = f"{self.prefix}_{s.column}" + ("" if self.named else "_trend")
             for part in _PARTS:
                 stat = registry.get(part, "trend")
-                self.columns.append(self.column(f"{base}_{part}", stat, unit, inner=text, span=span))
+                self.columns.append(
+                    self.column(f"{base}_{part}", stat, unit, inner=text, span=span)
+                )
         return True
 
     def all_periods(self) -> list:

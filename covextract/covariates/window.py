@@ -129,7 +129,9 @@ class WindowCovariate(SeriesCovariate):
         n = len(units)
         qa = self.structural_qa(qa_pp, n)
         b = self.before
-        dates = parse_record_dates(plan.table.frame, self.date_column, plan.recipe.study.date_format)
+        dates = parse_record_dates(
+            plan.table.frame, self.date_column, plan.recipe.study.date_format
+        )
         values = {}
         value_cols = [c for c in self.columns if c.statistic.family == "window"]
         for s, col in zip(self.stats, value_cols, strict=True):
@@ -165,4 +167,3 @@ class WindowCovariate(SeriesCovariate):
 
     def qa_codes(self) -> dict:
         return {**WINDOW_QA_CODES, **super().qa_codes()}
-

@@ -32,9 +32,7 @@ class ZonalCovariate(Covariate):
         if weight_by:
             wl = ctx.recipe.layers[weight_by]
             fill = {"weight": f"{weight_by} ({wl.unit})" if wl.unit else weight_by}
-        self.columns = [
-            self._column(f"{self.prefix}_{s.column}", s, **fill) for s in self.stats
-        ]
+        self.columns = [self._column(f"{self.prefix}_{s.column}", s, **fill) for s in self.stats]
         if weight_by and self.layer_name in ctx.sources and weight_by in ctx.sources:
             from covextract.errors import CovextractError
             from covextract.sources.weighted import WeightedSource

@@ -98,7 +98,6 @@ REALLOCATION_QA_CODES = {
 }
 
 
-
 class ReallocationWarning(CovextractWarning):
     """Some zone totals could not be placed, or zones overlap."""
 

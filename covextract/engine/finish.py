@@ -48,7 +48,6 @@ class FinishContext:
     percentiles: dict = field(default_factory=dict)
 
 
-
 def weighted_percentiles(unit, values, weights, n_units: int, qs) -> np.ndarray:
     """Weighted percentiles per unit; equal weights give numpy's ``linear`` method.
 

@@ -25,8 +25,7 @@ import numpy as np
 from covextract.core.grid import Grid
 from covextract.engine.kernels import group_by_block
 
-__all__ = [
-    "weights_key","WeightSet", "weights_from_coverage", "expand_runs"]
+__all__ = ["weights_key", "WeightSet", "weights_from_coverage", "expand_runs"]
 
 
 def expand_runs(run_unit, run_pix, run_len):

@@ -97,7 +97,9 @@ def compute_covariate(
     plan, cov, cache, *, progress: Progress, threads=None, client=None, period_values=None
 ) -> Outcome:
     """Compute one covariate of a plan, reporting its blocks to ``progress``."""
-    progress.start(f"{cov.qa_column[:-3] or cov.prefix} (layer {cov.layer_name})", _blocks(cov, plan))
+    progress.start(
+        f"{cov.qa_column[:-3] or cov.prefix} (layer {cov.layer_name})", _blocks(cov, plan)
+    )
     ctx = ComputeContext(
         plan,
         cache,
@@ -200,9 +202,7 @@ class Assembly:
             "weights_reused": getattr(cache, "reused", 0),
             "weights_from_cache": getattr(cache, "hits", 0),
             "workers": sorted(self.workers),
-            "proxy_fits": {
-                k: v["fit"] for k, v in self.learnt.items() if v.get("fit")
-            },
+            "proxy_fits": {k: v["fit"] for k, v in self.learnt.items() if v.get("fit")},
         }
         return RunResult(
             written,

@@ -339,6 +339,7 @@ def gpkg_geometry(plan):
     ]
     return pts, p.crs
 
+
 # ----------------------------------------------------------------------- check
 def series_report(plan) -> list[str]:
     """One line per series layer: periods found, gaps, and grids."""

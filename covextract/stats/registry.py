@@ -360,8 +360,7 @@ for _stat in (
         "valid_share",
         "valid_share",
         "point",
-        "share of the point's weight on valid pixels (nearest: 1 when its pixel is valid, "
-        "else 0)",
+        "share of the point's weight on valid pixels (nearest: 1 when its pixel is valid, else 0)",
         _fixed(FRACTION),
         sums=("w_all", "w_base"),
         finish=lambda acc, ctx: ctx.valid_share,
