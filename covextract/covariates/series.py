@@ -126,16 +126,18 @@ class SeriesCovariate(Covariate):
 
         plan = ctx.plan
         units = plan.unit_sets[self.unit_key]
-        first = self.series.source(periods[0]) if periods else None
-        geoms = units.to_crs(first.grid.crs) if first is not None else None
+        # reproject only when a period's CRS differs from the previous one's
+        # (a series on one grid reprojects once; a later period back on an
+        # earlier CRS gets geometries in that CRS, not the last ones)
+        geoms, geoms_crs = None, None
         n = len(units)
         out = {s.name: np.full((n, len(periods)), np.nan) for s in self.stats}
         qa_per_period, builds = [], 0
         options = self.engine_options(plan, ctx)
         for j, period in enumerate(periods):
             src = self.series.source(period)
-            if src.grid.crs != first.grid.crs:
-                geoms = units.to_crs(src.grid.crs)
+            if geoms is None or src.grid.crs != geoms_crs:
+                geoms, geoms_crs = units.to_crs(src.grid.crs), src.grid.crs
             res = zonal_units(src, geoms, self.stats, progress=ctx.advance, **options)
             builds += res.weights_builds
             for s in self.stats:
