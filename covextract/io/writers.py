@@ -33,7 +33,7 @@ def _fsync_dir(folder: Path) -> None:
             os.close(fd)
 
 
-def atomic_write(path, write: Callable[[Path], None]) -> Path:
+def atomic_write(path, write: Callable[[Path], None], *, durable: bool = True) -> Path:
     """Write ``path`` atomically by calling ``write(tmp_path)``.
 
     Parameters
@@ -42,6 +42,10 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
         Final destination; its folder is created if needed.
     write : callable
         Writes the complete content to the temporary path it is given.
+    durable : bool
+        fsync the file and its folder, so the new content survives a power
+        loss. Files that can be recomputed and are checked when read (the
+        state folder's pieces) skip it: the rename is still atomic.
     """
     path = Path(path)
     try:
@@ -55,8 +59,9 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
     tmp_path = Path(tmp)
     try:
         write(tmp_path)
-        with open(tmp_path, "rb+") as fh:
-            os.fsync(fh.fileno())
+        if durable:
+            with open(tmp_path, "rb+") as fh:
+                os.fsync(fh.fileno())
         # mkstemp creates 0600; give the file the mode a plain open() would (umask)
         os.chmod(tmp_path, 0o666 & ~_umask())
         crash_point(f"before_rename:{path.name}")
@@ -65,13 +70,14 @@ def atomic_write(path, write: Callable[[Path], None]) -> Path:
         with contextlib.suppress(OSError):
             tmp_path.unlink()
         raise
-    _fsync_dir(path.parent)
+    if durable:
+        _fsync_dir(path.parent)
     return path
 
 
-def atomic_write_bytes(path, data: bytes) -> Path:
-    """Write bytes atomically."""
-    return atomic_write(path, lambda p: p.write_bytes(data))
+def atomic_write_bytes(path, data: bytes, *, durable: bool = True) -> Path:
+    """Write bytes atomically (see :func:`atomic_write` for ``durable``)."""
+    return atomic_write(path, lambda p: p.write_bytes(data), durable=durable)
 
 
 def atomic_write_text(path, text: str) -> Path:

@@ -87,19 +87,28 @@ def piece_path(state_folder, covariate_fp: str, period_start: str) -> Path:
     return Path(state_folder) / PIECES_DIR / covariate_fp[:24] / f"{period_start}.parquet"
 
 
-def _write(path: Path, frame: pd.DataFrame, meta: dict) -> Path:
+def _write(path: Path, frame, meta: dict) -> Path:
+    """Write a piece (a DataFrame or an Arrow table) with its description.
+
+    Pieces are not fsynced: a piece is a recomputable cache, checked when it
+    is read (an unreadable piece is computed again), so a power loss can cost
+    a recomputation but never a wrong value. The outputs and the ledger are
+    durable.
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     from covextract.io.writers import atomic_write_bytes
 
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    table = (
+        frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(frame, preserve_index=False)
+    )
     merged = dict(table.schema.metadata or {})
     merged[_META_KEY] = json.dumps({"format": PIECE_FORMAT, **meta}, sort_keys=True).encode()
     table = table.replace_schema_metadata(merged)
     buffer = io.BytesIO()
     pq.write_table(table, buffer)
-    return atomic_write_bytes(path, buffer.getvalue())
+    return atomic_write_bytes(path, buffer.getvalue(), durable=False)
 
 
 def _read(path: Path):
@@ -157,10 +166,13 @@ def write_period_piece(
     qa: list,
 ) -> Path:
     """Write one period's per-unit statistics (``values``: stat name → array) and QA codes."""
-    frame = pd.DataFrame({"unit_id": [str(u) for u in ids]})
+    import pyarrow as pa
+
+    columns = {"unit_id": pa.array([str(u) for u in ids], type=pa.string())}
     for name, array in values.items():
-        frame[f"stat:{name}"] = np.asarray(array, dtype=np.float64)
-    frame["qa"] = _qa_text(qa)
+        columns[f"stat:{name}"] = pa.array(np.asarray(array, dtype=np.float64))
+    columns["qa"] = pa.array(list(_qa_text(qa)), type=pa.string())
+    frame = pa.table(columns)
     path = piece_path(state_folder, covariate_fp, period_start)
     meta = _meta_of(covariate_fp, period_start, period_end, inputs_fp, units_fp, "period")
     return _write(path, frame, meta)
