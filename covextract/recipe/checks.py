@@ -191,6 +191,9 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
             elif (
                 isinstance(spec, dict)
                 and isinstance(other, dict)
+                # A class table that is not a mapping is reported at the layer.
+                and isinstance(spec.get("classes") or {}, dict)
+                and isinstance(other.get("classes") or {}, dict)
                 and ((spec.get("classes") or {}) != (other.get("classes") or {}))
             ):
                 issues.append(

@@ -13,10 +13,12 @@ Loading is bounded, so that no recipe can make ``check`` hang or exhaust
 memory: the file holds at most :data:`MAX_RECIPE_BYTES`, blocks nest at most
 :data:`MAX_DEPTH` deep, lists and mappings hold at most
 :data:`MAX_ITEMS` entries (fewer for some keys, :data:`ITEM_LIMITS`), and YAML
-anchors and aliases (``&name``, ``*name``) are refused: nine nested aliases
-of nine items each expand a few hundred bytes into 387 million values. With
-no aliases the YAML nodes form a tree, so every walk below is linear in the
-file's size.
+aliases (``*name``) may expand the recipe to at most :data:`MAX_VALUES`
+values: nine nested aliases of nine items each would turn a few hundred
+bytes into 387 million values. Aliases stay allowed below that, because
+``yaml.safe_dump`` writes one wherever a script's data shares an object.
+The expanded size is computed once per node, so every walk below is linear
+in the file's size or bounded by the expansion limit.
 
 YAML here is YAML 1.1 as PyYAML reads it: unquoted ``yes``, ``no``, ``on``
 and ``off`` are booleans. The schema accepts ``area_weighting: off`` for
@@ -43,7 +45,14 @@ from covextract.recipe.common import NAME_PATTERN, describe
 from covextract.recipe.model import Recipe, nearest_line
 from covextract.recipe.renamed import renamed_to
 
-__all__ = ["load_recipe", "MAX_RECIPE_BYTES", "MAX_DEPTH", "MAX_ITEMS", "ITEM_LIMITS"]
+__all__ = [
+    "load_recipe",
+    "MAX_RECIPE_BYTES",
+    "MAX_DEPTH",
+    "MAX_VALUES",
+    "MAX_ITEMS",
+    "ITEM_LIMITS",
+]
 
 #: Largest recipe file read, in bytes. The demo recipe, comments and all, is
 #: under 10 kB; a recipe a hundred times larger is surely not typed by hand.
@@ -51,6 +60,9 @@ MAX_RECIPE_BYTES = 1_000_000
 #: Deepest nesting of blocks and lists. A recipe nests about six deep
 #: (``covariates[0].reallocate.zones.file``).
 MAX_DEPTH = 20
+#: Most values (keys, list items and scalars) a recipe may expand to
+#: through YAML aliases; the demo recipe holds about 400.
+MAX_VALUES = 100_000
 #: Most entries in any list or mapping of a recipe.
 MAX_ITEMS = 1000
 #: Tighter limits for some keys (by the key holding the list or mapping).
@@ -231,6 +243,12 @@ def _size_text(size: int) -> str:
     return f"{size} bytes"
 
 
+_TOO_DEEP = (
+    f"the recipe nests deeper than {MAX_DEPTH} levels of blocks and lists; a recipe needs "
+    "about six: check the brackets and indentation"
+)
+
+
 class _Refused(Exception):
     """A recipe YAML construct covextract does not read, with its 1-based line."""
 
@@ -241,7 +259,7 @@ class _Refused(Exception):
 
 
 class _RecipeLoader(yaml.SafeLoader):
-    """PyYAML's safe loader without anchors and aliases, with a nesting limit.
+    """PyYAML's safe loader with a nesting limit; it notes the line of the first alias.
 
     A value YAML cannot hold (a date such as 2021-02-30, a number of more
     than 4300 digits) becomes a YAML error at its line instead of a
@@ -249,48 +267,44 @@ class _RecipeLoader(yaml.SafeLoader):
     """
 
     _depth = 0
+    _first_alias: int | None = None
 
     def compose_node(self, parent, index):
         event = self.peek_event()
         line = event.start_mark.line + 1
-        if isinstance(event, yaml.AliasEvent) or getattr(event, "anchor", None) is not None:
-            raise _Refused(
-                "YAML anchors and aliases (&name, *name) are not allowed in a recipe; write "
-                "the value out in full",
-                line,
-            )
+        if isinstance(event, yaml.AliasEvent) and self._first_alias is None:
+            self._first_alias = line
         if self._depth >= MAX_DEPTH:
-            raise _Refused(
-                f"the recipe nests deeper than {MAX_DEPTH} levels of blocks and lists; a "
-                "recipe needs about six: check the brackets and indentation",
-                line,
-            )
+            raise _Refused(_TOO_DEEP, line)
         self._depth += 1
         try:
             return super().compose_node(parent, index)
         finally:
             self._depth -= 1
 
-    def _guarded(self, construct, node, what):
+    def _guarded(self, construct, node, what, why):
         try:
             return construct(self, node)
         except (ValueError, OverflowError) as exc:
+            shown = node.value if len(node.value) <= 40 else node.value[:37] + "..."
             raise yaml.constructor.ConstructorError(
                 None,
                 None,
-                f"{node.value[:40]!r} cannot be read as {what} ({exc}); put it in quotes "
-                "to mean text",
+                f"{shown!r} cannot be read as {what} ({why or exc}); put it in quotes to "
+                "mean text",
                 node.start_mark,
             ) from None
 
     def construct_yaml_timestamp(self, node):
-        return self._guarded(yaml.SafeLoader.construct_yaml_timestamp, node, "a date")
+        return self._guarded(yaml.SafeLoader.construct_yaml_timestamp, node, "a date", None)
 
     def construct_yaml_int(self, node):
-        return self._guarded(yaml.SafeLoader.construct_yaml_int, node, "a whole number")
+        return self._guarded(
+            yaml.SafeLoader.construct_yaml_int, node, "a whole number", "too many digits"
+        )
 
     def construct_yaml_float(self, node):
-        return self._guarded(yaml.SafeLoader.construct_yaml_float, node, "a number")
+        return self._guarded(yaml.SafeLoader.construct_yaml_float, node, "a number", "too long")
 
 
 _RecipeLoader.add_constructor(
@@ -300,17 +314,117 @@ _RecipeLoader.add_constructor("tag:yaml.org,2002:int", _RecipeLoader.construct_y
 _RecipeLoader.add_constructor("tag:yaml.org,2002:float", _RecipeLoader.construct_yaml_float)
 
 
+_FLOW_TOKEN = re.compile(r""""(?:[^"\\]|\\.)*"|'(?:[^']|'')*'|(?:^|\s)#[^\n]*|[\[{\]}]""")
+
+
+def _deep_flow_line(text: str) -> int | None:
+    """Line where ``[``/``{`` brackets first nest deeper than the limit, else None.
+
+    PyYAML's scanner slows down with every open bracket of a line (about a
+    second for a line of a thousand), before the composer's depth limit is
+    reached; this scan finds such a line in one pass. Quoted text and
+    comments are skipped, so brackets inside them do not count.
+    """
+    if text.count("[") + text.count("{") <= MAX_DEPTH:
+        return None
+    depth = 0
+    for match in _FLOW_TOKEN.finditer(text):
+        token = match.group()
+        if token in "[{":
+            depth += 1
+            if depth > MAX_DEPTH:
+                return text.count("\n", 0, match.start()) + 1
+        elif token in "]}":
+            depth = max(depth - 1, 0)
+    return None
+
+
+def _check_expansion(root: yaml.Node, alias_line: int) -> None:
+    """Refuse aliases that make the recipe expand beyond :data:`MAX_VALUES` values.
+
+    Each node's expanded size is computed once (the nodes form a graph in
+    which an alias is a second edge to a node), so this is linear in the
+    file's size. An alias inside its own anchor is refused too.
+    """
+    size: dict[int, int] = {}
+    stack: list[tuple[yaml.Node, bool]] = [(root, False)]
+    open_nodes: set[int] = set()
+    while stack:
+        node, done = stack.pop()
+        key = id(node)
+        children = _children(node)
+        if done:
+            open_nodes.discard(key)
+            size[key] = min(1 + sum(size[id(c)] for c in children), MAX_VALUES + 1)
+            continue
+        if key in size:
+            continue
+        if key in open_nodes:
+            raise _Refused(
+                "a YAML alias (*name) sits inside its own anchor (&name), which would repeat "
+                "without end; write the value out",
+                node.start_mark.line + 1,
+            )
+        open_nodes.add(key)
+        stack.append((node, True))
+        for child in children:
+            if id(child) in open_nodes:
+                raise _Refused(
+                    "a YAML alias (*name) sits inside its own anchor (&name), which would "
+                    "repeat without end; write the value out",
+                    child.start_mark.line + 1,
+                )
+            if id(child) not in size:
+                stack.append((child, False))
+    if size[id(root)] > MAX_VALUES:
+        raise _Refused(
+            f"YAML aliases (*name) make this recipe expand to more than {MAX_VALUES:,} values "
+            "(the first alias is on this line); write the values out, or use fewer aliases",
+            alias_line,
+        )
+
+
+def _children(node: yaml.Node) -> list[yaml.Node]:
+    if isinstance(node, yaml.MappingNode):
+        return [n for pair in node.value for n in pair]
+    if isinstance(node, yaml.SequenceNode):
+        return list(node.value)
+    return []
+
+
 def _parse_yaml(
     text: str, file: str
 ) -> tuple[Any, dict[tuple[str, ...], int], list[RecipeProblem]]:
     """Parse YAML text into data, the line of each key path, and duplicate-key problems."""
-    loader = _RecipeLoader(text)
+    deep = _deep_flow_line(text)
+    if deep is not None:
+        raise RecipeError([RecipeProblem(_TOO_DEEP, file=file, line=deep)])
+    try:
+        # The reader checks every character when it is made: inside the try.
+        loader = _RecipeLoader(text)
+    except yaml.reader.ReaderError as exc:
+        line = text[: exc.position].count("\n") + 1
+        raise RecipeError(
+            [
+                RecipeProblem(
+                    f"the recipe holds a control character ({exc.character:#06x}) YAML "
+                    "does not allow; delete it (in quoted text, write it as an escape such as "
+                    "\\t)",
+                    file=file,
+                    line=line,
+                )
+            ]
+        ) from None
     try:
         node = loader.get_single_node()
         if node is None:
             return None, {}, []
+        if loader._first_alias is not None:
+            _check_expansion(node, loader._first_alias)
         problems = _duplicate_keys(node, file)
         data = loader.construct_document(node)
+        # construct_document has merged any ``<<`` keys into the nodes, so
+        # the index below sees the mappings as the data holds them.
         lines = _index_lines(node, loader)
         return data, lines, problems
     except _Refused as exc:
@@ -391,8 +505,9 @@ def _duplicate_keys(root: yaml.Node, file: str) -> list[RecipeProblem]:
 def _index_lines(root: yaml.Node, loader: yaml.SafeLoader) -> dict[tuple[str, ...], int]:
     """1-based line of every key path (keys and list indices as text).
 
-    The loader refuses aliases, so the nodes form a tree and each is visited
-    once: the walk is linear in the file's size.
+    An alias is walked again at each place it stands, as the data holds it
+    there; :func:`_check_expansion` has bounded the expanded size by then, so
+    the walk is bounded by :data:`MAX_VALUES` and linear in it.
     """
     lines: dict[tuple[str, ...], int] = {(): root.start_mark.line + 1}
     stack: list[tuple[yaml.Node, tuple[str, ...]]] = [(root, ())]

@@ -7,7 +7,6 @@ from pathlib import Path
 
 import pytest
 
-from covextract.errors import RecipeError
 from covextract.recipe import Recipe, load_recipe
 
 # The example of the recipe contract (villages and rasters are invented), with
@@ -211,9 +210,7 @@ def test_unquoted_off_means_off_and_false_is_accepted(tmp_path):
     assert load_recipe(data).covariates[2].area_weighting == "off"
 
 
-def test_yaml_anchors_and_aliases_are_refused_at_their_line(tmp_path):
-    # Aliases can expand a few hundred bytes into millions of values, so a
-    # recipe writes every value out (merge keys need an alias, so they go too).
+def test_yaml_merge_keys_and_anchors(tmp_path):
     text = EXAMPLE.replace(
         "  - layer: cover\n    stats: [share, dominant]\n",
         "  - &common\n    layer: cover\n    stats: [share, dominant]\n"
@@ -221,14 +218,10 @@ def test_yaml_anchors_and_aliases_are_refused_at_their_line(tmp_path):
     )
     path = tmp_path / "r.yaml"
     path.write_text(text, encoding="utf-8")
-    with pytest.raises(RecipeError) as info:
-        load_recipe(path)
-    (p,) = info.value.problems
-    assert p.message == (
-        "YAML anchors and aliases (&name, *name) are not allowed in a recipe; write the "
-        "value out in full"
-    )
-    assert text.splitlines()[p.line - 1].startswith("  - &common")
+    recipe = load_recipe(path)
+    near = recipe.covariates[3]
+    assert (near.layer, near.name, near.buffer_m) == ("cover", "cover_near", 500.0)
+    assert near.stats == ["share", "dominant"]
 
 
 def test_fingerprint_ignores_key_order_and_explicit_defaults(example_file, tmp_path):
