@@ -202,8 +202,7 @@ def _read_text(path: Path) -> str:
             ) from None
         if isinstance(exc, IsADirectoryError):
             raise InputFileError(
-                f"{path} is a folder, not a recipe file; give the path of the recipe's "
-                ".yaml file"
+                f"{path} is a folder, not a recipe file; give the path of the recipe's .yaml file"
             ) from None
         raise InputFileError(
             f"cannot read recipe file {path}: {exc.strerror or exc}; check its permissions"
@@ -290,8 +289,7 @@ class _RecipeLoader(yaml.SafeLoader):
             raise yaml.constructor.ConstructorError(
                 None,
                 None,
-                f"{shown!r} cannot be read as {what} ({why or exc}); put it in quotes to "
-                "mean text",
+                f"{shown!r} cannot be read as {what} ({why or exc}); put it in quotes to mean text",
                 node.start_mark,
             ) from None
 
@@ -307,9 +305,7 @@ class _RecipeLoader(yaml.SafeLoader):
         return self._guarded(yaml.SafeLoader.construct_yaml_float, node, "a number", "too long")
 
 
-_RecipeLoader.add_constructor(
-    "tag:yaml.org,2002:timestamp", _RecipeLoader.construct_yaml_timestamp
-)
+_RecipeLoader.add_constructor("tag:yaml.org,2002:timestamp", _RecipeLoader.construct_yaml_timestamp)
 _RecipeLoader.add_constructor("tag:yaml.org,2002:int", _RecipeLoader.construct_yaml_int)
 _RecipeLoader.add_constructor("tag:yaml.org,2002:float", _RecipeLoader.construct_yaml_float)
 

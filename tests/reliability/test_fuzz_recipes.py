@@ -152,7 +152,7 @@ def _check(folder: Path, data) -> None:
 
 
 @settings(
-    max_examples=250,
+    max_examples=400,
     deadline=None,
     derandomize=True,
     database=None,

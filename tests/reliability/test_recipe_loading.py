@@ -156,7 +156,7 @@ def test_deep_brackets_are_refused_fast(scenario):
 
 
 def test_control_character(scenario):
-    scenario.write_recipe(text="version: 1\nstudy: {table: \"a\x07b\"}\n")
+    scenario.write_recipe(text='version: 1\nstudy: {table: "a\x07b"}\n')
     _check(scenario, "case.yaml:2: the recipe holds a control character (0x0007)")
 
 
