@@ -79,14 +79,17 @@ def _check_covariate(
     stats = cov.get("stats")
     names = [s for s in stats if isinstance(s, str)] if isinstance(stats, list) else []
     if isinstance(stats, list):
+        seen: set[str] = set()
         for j, stat in enumerate(stats):
             if not isinstance(stat, str):
                 continue  # pydantic reports the type
-            if stat in stats[:j]:
+            if stat in seen:
                 issues.append(
                     issue(loc + ("stats", j), f"statistic {stat!r} is listed twice", stat)
                 )
-            elif proxy is not None:
+                continue
+            seen.add(stat)
+            if proxy is not None:
                 if stat not in PROXY_STATS[proxy]:
                     issues.append(
                         issue(
@@ -136,10 +139,15 @@ def _check_covariate(
 
 
 def _labels_of(spec: Any) -> set:
+    """Class and group labels of a layer's raw spec (what ``pairs:`` may name)."""
     if not isinstance(spec, dict):
         return set()
-    labels = {str(v) for v in (spec.get("classes") or {}).values()}
-    labels |= {str(g) for g in (spec.get("groups") or {})}
+    # The raw data is not validated yet: a ``classes:`` or ``groups:`` that is
+    # not a mapping is reported by the layer's model; here it adds no labels.
+    classes = spec.get("classes")
+    groups = spec.get("groups")
+    labels = {str(v) for v in classes.values()} if isinstance(classes, dict) else set()
+    labels |= {str(g) for g in groups} if isinstance(groups, dict) else set()
     return labels | {"other"}
 
 
@@ -183,6 +191,9 @@ def _check_change(i: int, cov: dict, layers: dict) -> list[InitErrorDetails]:
             elif (
                 isinstance(spec, dict)
                 and isinstance(other, dict)
+                # A class table that is not a mapping is reported at the layer.
+                and isinstance(spec.get("classes") or {}, dict)
+                and isinstance(other.get("classes") or {}, dict)
                 and ((spec.get("classes") or {}) != (other.get("classes") or {}))
             ):
                 issues.append(

@@ -21,6 +21,7 @@ from __future__ import annotations
 import datetime
 import difflib
 import os
+import re
 from pathlib import PurePath
 from typing import Annotated, Any
 
@@ -85,6 +86,29 @@ def hint(word: str, choices) -> str:
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
+_EXPONENT = re.compile(r"^[-+]?(\d+)(?:\.(\d*))?[eE]([-+]?\d+)$")
+
+
+def _number_hint(value: Any) -> str:
+    """How to write a number that YAML read as text (``1e9``), or ``""``."""
+    if not isinstance(value, str):
+        return ""
+    text = value.strip()
+    match = _EXPONENT.match(text)
+    if match:
+        # YAML 1.1 needs a dot and a signed exponent (1.0e+9); 1e9 is text.
+        whole, frac, exp = match.groups()
+        exp_int = int(exp)
+        dotted = f"{'-' if text.startswith('-') else ''}{whole}.{frac or '0'}e{exp_int:+d}"
+        try:
+            number = float(text)
+        except (ValueError, OverflowError):
+            return f"; YAML reads {text} as text: write {dotted} for a number"
+        plain = f" or {int(number)}" if number.is_integer() and abs(number) < 1e16 else ""
+        return f"; YAML reads {text} as text: write {dotted}{plain} for a number"
+    return ""
+
+
 def describe(value: Any) -> str:
     """Show a value as a user would recognise it, with its YAML type."""
     if isinstance(value, bool):
@@ -95,7 +119,7 @@ def describe(value: Any) -> str:
     if value is None:
         return "nothing (an empty value)"
     if isinstance(value, str):
-        return f"{value!r} (text)"
+        return f"{value!r} (text{_number_hint(value)})"
     if isinstance(value, int):
         return f"{value} (a whole number)"
     if isinstance(value, float):

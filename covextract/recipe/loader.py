@@ -9,6 +9,17 @@ that key, or of its nearest parent when the key is missing. Pydantic's
 generic messages are rewritten into plain ones that show the value found
 and the valid choices.
 
+Loading is bounded, so that no recipe can make ``check`` hang or exhaust
+memory: the file holds at most :data:`MAX_RECIPE_BYTES`, blocks nest at most
+:data:`MAX_DEPTH` deep, lists and mappings hold at most
+:data:`MAX_ITEMS` entries (fewer for some keys, :data:`ITEM_LIMITS`), and YAML
+aliases (``*name``) may expand the recipe to at most :data:`MAX_VALUES`
+values: nine nested aliases of nine items each would turn a few hundred
+bytes into 387 million values. Aliases stay allowed below that, because
+``yaml.safe_dump`` writes one wherever a script's data shares an object.
+The expanded size is computed once per node, so every walk below is linear
+in the file's size or bounded by the expansion limit.
+
 YAML here is YAML 1.1 as PyYAML reads it: unquoted ``yes``, ``no``, ``on``
 and ``off`` are booleans. The schema accepts ``area_weighting: off`` for
 that reason; elsewhere the messages say to quote such words.
@@ -17,6 +28,7 @@ that reason; elsewhere the messages say to quote such words.
 from __future__ import annotations
 
 import difflib
+import errno
 import os
 import re
 import types
@@ -33,7 +45,29 @@ from covextract.recipe.common import NAME_PATTERN, describe
 from covextract.recipe.model import Recipe, nearest_line
 from covextract.recipe.renamed import renamed_to
 
-__all__ = ["load_recipe"]
+__all__ = [
+    "load_recipe",
+    "MAX_RECIPE_BYTES",
+    "MAX_DEPTH",
+    "MAX_VALUES",
+    "MAX_ITEMS",
+    "ITEM_LIMITS",
+]
+
+#: Largest recipe file read, in bytes. The demo recipe, comments and all, is
+#: under 10 kB; a recipe a hundred times larger is surely not typed by hand.
+MAX_RECIPE_BYTES = 1_000_000
+#: Deepest nesting of blocks and lists. A recipe nests about six deep
+#: (``covariates[0].reallocate.zones.file``).
+MAX_DEPTH = 20
+#: Most values (keys, list items and scalars) a recipe may expand to
+#: through YAML aliases; the demo recipe holds about 400.
+MAX_VALUES = 100_000
+#: Most entries in any list or mapping of a recipe.
+MAX_ITEMS = 1000
+#: Tighter limits for some keys (by the key holding the list or mapping).
+#: There are fewer than 100 statistic names in all.
+ITEM_LIMITS = {"stats": 100}
 
 _MISSING_HINTS = {
     ("version",): "write version: 1 as the first line of the recipe",
@@ -85,11 +119,17 @@ def load_recipe(
         lines: dict[tuple[str, ...], int] = {}
         problems: list[RecipeProblem] = []
         folder = Path(base_dir).expanduser() if base_dir is not None else Path.cwd()
+        problems = _check_bounds(data, file, lines)
+        if problems:
+            raise RecipeError(problems)
     elif isinstance(source, (str, os.PathLike)):
         path = Path(source).expanduser()
         file = os.fspath(source)
         text = _read_text(path)
         data, lines, problems = _parse_yaml(text, file)
+        bounds = _check_bounds(data, file, lines)
+        if bounds:
+            raise RecipeError(bounds)
         folder = Path(base_dir).expanduser() if base_dir is not None else path.parent
     else:
         raise TypeError(f"load_recipe takes a file path or a mapping, got {type(source).__name__}")
@@ -134,20 +174,51 @@ def load_recipe(
 
 def _read_text(path: Path) -> str:
     try:
-        raw = path.read_bytes()
+        with open(path, "rb") as f:
+            # One byte more than the limit tells a file at the limit from a
+            # larger one without reading a huge (or endless) file whole.
+            raw = f.read(MAX_RECIPE_BYTES + 1)
+            size = len(raw)
+            if size > MAX_RECIPE_BYTES:
+                try:
+                    size = max(size, os.fstat(f.fileno()).st_size)
+                except OSError:
+                    pass
     except FileNotFoundError:
+        if path.is_symlink():
+            raise InputFileError(
+                f"recipe file {path} is a symbolic link to {os.readlink(path)}, which does not "
+                "exist; point the link at the recipe or give the recipe's own path"
+            ) from None
         raise InputFileError(
             f"recipe file not found: {path}; check the path (relative paths start from the "
             f"current folder, {Path.cwd()})"
         ) from None
-    except IsADirectoryError:
-        raise InputFileError(
-            f"{path} is a folder, not a recipe file; give the path of the recipe's .yaml file"
-        ) from None
     except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise InputFileError(
+                f"recipe file {path} is a symbolic link loop (the links point at each other "
+                "and never reach a file); give the path of the recipe file itself"
+            ) from None
+        if isinstance(exc, IsADirectoryError):
+            raise InputFileError(
+                f"{path} is a folder, not a recipe file; give the path of the recipe's .yaml file"
+            ) from None
         raise InputFileError(
             f"cannot read recipe file {path}: {exc.strerror or exc}; check its permissions"
         ) from None
+    if size > MAX_RECIPE_BYTES:
+        more = "more than " if size == MAX_RECIPE_BYTES + 1 else ""
+        raise RecipeError(
+            [
+                RecipeProblem(
+                    f"the recipe file is {more}{_size_text(size)}; a recipe may hold at most "
+                    f"{_size_text(MAX_RECIPE_BYTES)}: check that this is the recipe (long "
+                    "lists of classes or covariates are better split over several recipes)",
+                    file=os.fspath(path),
+                )
+            ]
+        )
     try:
         return raw.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
@@ -163,21 +234,208 @@ def _read_text(path: Path) -> str:
         ) from None
 
 
+def _size_text(size: int) -> str:
+    if size >= 1_000_000:
+        return f"{size / 1_000_000:.1f} MB ({size:,} bytes)"
+    if size >= 1000:
+        return f"{size / 1000:.0f} kB ({size:,} bytes)"
+    return f"{size} bytes"
+
+
+_TOO_DEEP = (
+    f"the recipe nests deeper than {MAX_DEPTH} levels of blocks and lists; a recipe needs "
+    "about six: check the brackets and indentation"
+)
+
+
+class _Refused(Exception):
+    """A recipe YAML construct covextract does not read, with its 1-based line."""
+
+    def __init__(self, message: str, line: int) -> None:
+        super().__init__(message)
+        self.message = message
+        self.line = line
+
+
+class _RecipeLoader(yaml.SafeLoader):
+    """PyYAML's safe loader with a nesting limit; it notes the line of the first alias.
+
+    A value YAML cannot hold (a date such as 2021-02-30, a number of more
+    than 4300 digits) becomes a YAML error at its line instead of a
+    ``ValueError`` from inside PyYAML.
+    """
+
+    _depth = 0
+    _first_alias: int | None = None
+
+    def compose_node(self, parent, index):
+        event = self.peek_event()
+        line = event.start_mark.line + 1
+        if isinstance(event, yaml.AliasEvent) and self._first_alias is None:
+            self._first_alias = line
+        if self._depth >= MAX_DEPTH:
+            raise _Refused(_TOO_DEEP, line)
+        self._depth += 1
+        try:
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+    def _guarded(self, construct, node, what, why):
+        try:
+            return construct(self, node)
+        except (ValueError, OverflowError) as exc:
+            shown = node.value if len(node.value) <= 40 else node.value[:37] + "..."
+            raise yaml.constructor.ConstructorError(
+                None,
+                None,
+                f"{shown!r} cannot be read as {what} ({why or exc}); put it in quotes to mean text",
+                node.start_mark,
+            ) from None
+
+    def construct_yaml_timestamp(self, node):
+        return self._guarded(yaml.SafeLoader.construct_yaml_timestamp, node, "a date", None)
+
+    def construct_yaml_int(self, node):
+        return self._guarded(
+            yaml.SafeLoader.construct_yaml_int, node, "a whole number", "too many digits"
+        )
+
+    def construct_yaml_float(self, node):
+        return self._guarded(yaml.SafeLoader.construct_yaml_float, node, "a number", "too long")
+
+
+_RecipeLoader.add_constructor("tag:yaml.org,2002:timestamp", _RecipeLoader.construct_yaml_timestamp)
+_RecipeLoader.add_constructor("tag:yaml.org,2002:int", _RecipeLoader.construct_yaml_int)
+_RecipeLoader.add_constructor("tag:yaml.org,2002:float", _RecipeLoader.construct_yaml_float)
+
+
+_FLOW_TOKEN = re.compile(r""""(?:[^"\\]|\\.)*"|'(?:[^']|'')*'|(?:^|\s)#[^\n]*|[\[{\]}]""")
+
+
+def _deep_flow_line(text: str) -> int | None:
+    """Line where ``[``/``{`` brackets first nest deeper than the limit, else None.
+
+    PyYAML's scanner slows down with every open bracket of a line (about a
+    second for a line of a thousand), before the composer's depth limit is
+    reached; this scan finds such a line in one pass. Quoted text and
+    comments are skipped, so brackets inside them do not count.
+    """
+    if text.count("[") + text.count("{") <= MAX_DEPTH:
+        return None
+    depth = 0
+    for match in _FLOW_TOKEN.finditer(text):
+        token = match.group()
+        if token in "[{":
+            depth += 1
+            if depth > MAX_DEPTH:
+                return text.count("\n", 0, match.start()) + 1
+        elif token in "]}":
+            depth = max(depth - 1, 0)
+    return None
+
+
+def _check_expansion(root: yaml.Node, alias_line: int) -> None:
+    """Refuse aliases that make the recipe expand beyond :data:`MAX_VALUES` values.
+
+    Each node's expanded size is computed once (the nodes form a graph in
+    which an alias is a second edge to a node), so this is linear in the
+    file's size. An alias inside its own anchor is refused too.
+    """
+    size: dict[int, int] = {}
+    stack: list[tuple[yaml.Node, bool]] = [(root, False)]
+    open_nodes: set[int] = set()
+    while stack:
+        node, done = stack.pop()
+        key = id(node)
+        children = _children(node)
+        if done:
+            open_nodes.discard(key)
+            size[key] = min(1 + sum(size[id(c)] for c in children), MAX_VALUES + 1)
+            continue
+        if key in size:
+            continue
+        if key in open_nodes:
+            raise _Refused(
+                "a YAML alias (*name) sits inside its own anchor (&name), which would repeat "
+                "without end; write the value out",
+                node.start_mark.line + 1,
+            )
+        open_nodes.add(key)
+        stack.append((node, True))
+        for child in children:
+            if id(child) in open_nodes:
+                raise _Refused(
+                    "a YAML alias (*name) sits inside its own anchor (&name), which would "
+                    "repeat without end; write the value out",
+                    child.start_mark.line + 1,
+                )
+            if id(child) not in size:
+                stack.append((child, False))
+    if size[id(root)] > MAX_VALUES:
+        raise _Refused(
+            f"YAML aliases (*name) make this recipe expand to more than {MAX_VALUES:,} values "
+            "(the first alias is on this line); write the values out, or use fewer aliases",
+            alias_line,
+        )
+
+
+def _children(node: yaml.Node) -> list[yaml.Node]:
+    if isinstance(node, yaml.MappingNode):
+        return [n for pair in node.value for n in pair]
+    if isinstance(node, yaml.SequenceNode):
+        return list(node.value)
+    return []
+
+
 def _parse_yaml(
     text: str, file: str
 ) -> tuple[Any, dict[tuple[str, ...], int], list[RecipeProblem]]:
     """Parse YAML text into data, the line of each key path, and duplicate-key problems."""
-    loader = yaml.SafeLoader(text)
+    deep = _deep_flow_line(text)
+    if deep is not None:
+        raise RecipeError([RecipeProblem(_TOO_DEEP, file=file, line=deep)])
+    try:
+        # The reader checks every character when it is made: inside the try.
+        loader = _RecipeLoader(text)
+    except yaml.reader.ReaderError as exc:
+        line = text[: exc.position].count("\n") + 1
+        raise RecipeError(
+            [
+                RecipeProblem(
+                    f"the recipe holds a control character ({exc.character:#06x}) YAML "
+                    "does not allow; delete it (in quoted text, write it as an escape such as "
+                    "\\t)",
+                    file=file,
+                    line=line,
+                )
+            ]
+        ) from None
     try:
         node = loader.get_single_node()
         if node is None:
             return None, {}, []
+        if loader._first_alias is not None:
+            _check_expansion(node, loader._first_alias)
         problems = _duplicate_keys(node, file)
         data = loader.construct_document(node)
         # construct_document has merged any ``<<`` keys into the nodes, so
         # the index below sees the mappings as the data holds them.
         lines = _index_lines(node, loader)
         return data, lines, problems
+    except _Refused as exc:
+        raise RecipeError([RecipeProblem(exc.message, file=file, line=exc.line)]) from None
+    except yaml.constructor.ConstructorError as exc:
+        mark = exc.problem_mark
+        line = mark.line + 1 if mark else None
+        what = exc.problem or "unreadable value"
+        if "could not determine a constructor" in what:
+            tag = what.split("tag", 1)[-1].strip(" '!").replace("tag:yaml.org,2002:", "!!")
+            what = (
+                f"the YAML tag {tag!r} is not allowed in a recipe (a recipe holds only plain "
+                "text, numbers, yes/no, lists and blocks); remove the tag"
+            )
+        raise RecipeError([RecipeProblem(what, file=file, line=line)]) from None
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         what = exc.problem or "unreadable YAML"
@@ -241,28 +499,89 @@ def _duplicate_keys(root: yaml.Node, file: str) -> list[RecipeProblem]:
 
 
 def _index_lines(root: yaml.Node, loader: yaml.SafeLoader) -> dict[tuple[str, ...], int]:
-    """1-based line of every key path (keys and list indices as text)."""
-    lines: dict[tuple[str, ...], int] = {(): root.start_mark.line + 1}
+    """1-based line of every key path (keys and list indices as text).
 
-    def walk(node: yaml.Node, path: tuple[str, ...], active: frozenset) -> None:
-        if id(node) in active:  # an alias that contains itself
-            return
-        active = active | {id(node)}
+    An alias is walked again at each place it stands, as the data holds it
+    there; :func:`_check_expansion` has bounded the expanded size by then, so
+    the walk is bounded by :data:`MAX_VALUES` and linear in it.
+    """
+    lines: dict[tuple[str, ...], int] = {(): root.start_mark.line + 1}
+    stack: list[tuple[yaml.Node, tuple[str, ...]]] = [(root, ())]
+    while stack:
+        node, path = stack.pop()
         if isinstance(node, yaml.MappingNode):
             for key, value in node.value:
                 if not isinstance(key, yaml.ScalarNode):
                     continue
                 sub = path + (str(loader.construct_object(key)),)
                 lines[sub] = key.start_mark.line + 1
-                walk(value, sub, active)
+                stack.append((value, sub))
         elif isinstance(node, yaml.SequenceNode):
             for i, item in enumerate(node.value):
                 sub = path + (str(i),)
                 lines[sub] = item.start_mark.line + 1
-                walk(item, sub, active)
-
-    walk(root, (), frozenset())
+                stack.append((item, sub))
     return lines
+
+
+def _check_bounds(data: Any, file: str | None, lines: dict) -> list[RecipeProblem]:
+    """Refuse lists and mappings beyond the limits, too deep nesting, and NUL characters.
+
+    Runs before validation, so that no check meets a list of a million
+    statistics. Works on data given as a mapping too (which may even
+    contain itself: the depth limit ends the walk).
+    """
+    problems: list[RecipeProblem] = []
+    stack: list[tuple[Any, tuple]] = [(data, ())]
+    while stack and len(problems) < 20:
+        value, path = stack.pop()
+        if len(path) > MAX_DEPTH:
+            problems.append(
+                RecipeProblem(
+                    f"the recipe nests deeper than {MAX_DEPTH} levels of blocks and lists",
+                    key=_format_key_path(path, data) or None,
+                    file=file,
+                    line=nearest_line(lines, path),
+                )
+            )
+            continue
+        if isinstance(value, str):
+            if "\x00" in value:
+                problems.append(
+                    RecipeProblem(
+                        "the text holds a NUL character (\\0), which no name or path may "
+                        "hold; remove it",
+                        key=_format_key_path(path, data) or None,
+                        file=file,
+                        line=nearest_line(lines, path),
+                    )
+                )
+            continue
+        if not isinstance(value, (dict, list)):
+            continue
+        limit = ITEM_LIMITS.get(path[-1], MAX_ITEMS) if path else MAX_ITEMS
+        if len(value) > limit:
+            what = "list holds" if isinstance(value, list) else "block holds"
+            what = f"this {what}" if path else "the recipe holds"
+            unit = "entries" if isinstance(value, list) else "keys"
+            problems.append(
+                RecipeProblem(
+                    f"{what} {len(value):,} {unit}; a recipe allows at most {limit} here: "
+                    "check that it is what you meant, or split the work over several recipes",
+                    key=_format_key_path(path, data) or None,
+                    file=file,
+                    line=nearest_line(lines, path),
+                )
+            )
+            continue
+        if isinstance(value, dict):
+            for k, v in value.items():
+                if isinstance(k, str) and "\x00" in k:
+                    stack.append((k, path + (k,)))
+                stack.append((v, path + (k,)))
+        else:
+            stack.extend((v, path + (i,)) for i, v in enumerate(value))
+    return problems
 
 
 # --------------------------------------------------------------------------
