@@ -1,0 +1,325 @@
+"""Reliability catalogue: bad inputs (rasters, tables, geometries, dates, state, scheduler).
+
+Each case breaks one input of the invented demo scenario and checks, through
+the harness of ``conftest.py``, the exact message, the exit code, that no
+traceback was printed and that no file changed. Most cases use a one-covariate
+recipe (:func:`small`) so they stay quick.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import threading
+import warnings
+
+import geopandas as gpd
+import numpy as np
+import pytest
+import rasterio
+import shapely
+from affine import Affine
+
+LOOK_RIGHT = "recipe and inputs look right; nothing was computed."
+
+
+def small(scenario, **layer):
+    """The scenario reduced to one covariate (mean surface temperature) on one layer."""
+    spec = dict(scenario.data["layers"]["surface_temp"])
+    spec.update(layer)
+    scenario.data["layers"] = {"surface_temp": spec}
+    scenario.data["covariates"] = [{"layer": "surface_temp", "stats": ["mean"]}]
+    return scenario.write_recipe()
+
+
+def lat_lon_raster(path, data, transform, crs="EPSG:4326"):
+    """A one-band GeoTIFF (``crs=None``: without a CRS)."""
+    kwargs = dict(
+        driver="GTiff",
+        width=data.shape[1],
+        height=data.shape[0],
+        count=1,
+        dtype=data.dtype,
+        transform=transform,
+    )
+    if crs is not None:
+        kwargs["crs"] = crs
+    with rasterio.open(path, "w", **kwargs) as ds:
+        ds.write(data, 1)
+    return path
+
+
+def edit_cell(scenario, column, value, row=0):
+    """Set one cell of villages.csv (``row`` counted from 0 below the header)."""
+    path = scenario.folder / "villages.csv"
+    lines = path.read_text(encoding="utf-8").splitlines()
+    header = lines[0].split(",")
+    cells = lines[1 + row].split(",")
+    cells[header.index(column)] = value
+    lines[1 + row] = ",".join(cells)
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def where(scenario, line, key):
+    """The location prefix ``check`` prints for a recipe key."""
+    return f"{scenario.recipe}:{line} {key}: "
+
+
+# ------------------------------------------------------------------ rasters
+def test_zero_byte_raster(scenario):
+    small(scenario)
+    tif = scenario.folder / "surface_temp_2021.tif"
+    tif.write_bytes(b"")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {tif} is empty (0 bytes): an interrupted "
+        "download or copy? Fetch or copy the file again.",
+    )
+
+
+def test_truncated_raster(scenario):
+    small(scenario)
+    tif = scenario.folder / "surface_temp_2021.tif"
+    tif.write_bytes(tif.read_bytes()[:2000])
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {tif} cannot be opened as a raster",
+    )
+
+
+def test_text_saved_as_tif(scenario):
+    small(scenario)
+    tif = scenario.folder / "surface_temp_2021.tif"
+    tif.write_text("station,rain\nA,12\n", encoding="utf-8")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {tif} cannot be opened as a raster ('{tif}' "
+        "not recognized as being in a supported file format.). Is it a GeoTIFF or another "
+        "format GDAL reads?",
+    )
+
+
+def test_raster_without_crs(scenario):
+    tif = lat_lon_raster(
+        scenario.folder / "nocrs.tif",
+        np.ones((50, 50), "f4"),
+        Affine(0.05, 0, 4.0, 0, -0.05, -11.0),
+        crs=None,
+    )
+    small(scenario, file="nocrs.tif")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {tif} has no CRS, so units cannot be placed "
+        'on it. Add crs: (for example crs: "EPSG:4326") to the layer in the recipe, or fix '
+        "the file.",
+    )
+
+
+def test_rotated_grid(scenario):
+    tif = lat_lon_raster(
+        scenario.folder / "rotated.tif",
+        np.ones((50, 50), "f4"),
+        Affine(0.05, 0.01, 4.0, 0.01, -0.05, -11.0),
+    )
+    small(scenario, file="rotated.tif")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {tif} has a rotated or sheared grid, which "
+        "covextract does not support. Warp it to a north-up grid first (gdalwarp).",
+    )
+
+
+def test_south_up_grid_is_accepted(scenario):
+    # A south-up grid (positive row step) is a plain axis flip: accepted.
+    lat_lon_raster(
+        scenario.folder / "south_up.tif",
+        np.full((50, 50), 300.0, "f4"),
+        Affine(0.05, 0, 4.0, 0, 0.05, -13.5),
+    )
+    small(scenario, file="south_up.tif")
+    scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+def test_non_square_pixels_are_accepted(scenario):
+    # Pixels of 0.025 by 0.05 degrees: coverage is computed per pixel, any shape.
+    lat_lon_raster(
+        scenario.folder / "non_square.tif",
+        np.full((50, 100), 300.0, "f4"),
+        Affine(0.025, 0, 4.0, 0, -0.05, -11.0),
+    )
+    small(scenario, file="non_square.tif")
+    scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+def test_all_units_outside_the_raster(scenario):
+    lat_lon_raster(
+        scenario.folder / "elsewhere.tif",
+        np.ones((50, 50), "f4"),
+        Affine(0.05, 0, 40.0, 0, -0.05, 11.0),
+    )
+    small(scenario, file="elsewhere.tif")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="covariates[0].layer: no unit overlaps layer 'surface_temp' (grid bounds "
+        "(40.0, 8.5, 42.5, 11.0) in EPSG:4326); check the layer file and the study's CRS",
+    )
+
+
+def test_raster_symlink_loop(scenario):
+    os.symlink(scenario.folder / "loop_b.tif", scenario.folder / "loop_a.tif")
+    os.symlink(scenario.folder / "loop_a.tif", scenario.folder / "loop_b.tif")
+    small(scenario, file="loop_a.tif")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"raster of layer 'surface_temp' {scenario.folder / 'loop_a.tif'} is a symlink "
+        "loop (the link leads back to itself). Point the link at the real file, or name the "
+        "file itself in the recipe.",
+    )
+
+
+# ------------------------------------------------------------ study table
+def test_nan_coordinates(scenario):
+    small(scenario)
+    edit_cell(scenario, "lon", "NaN")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: column 'lon' of villages.csv has 1 coordinate value(s) that are not "
+        "numbers: row 1 (id '003'): 'NaN' (digits shown as #). Give plain decimal numbers, "
+        "and leave the cell empty for a record without one.",
+    )
+
+
+def test_decimal_comma_names_the_row_not_the_coordinate(scenario):
+    small(scenario)
+    edit_cell(scenario, "lat", '"-11,696279"')
+    result = scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="row 1 (id '003'): '-##,######' (digits shown as #). Use a dot as the decimal "
+        "separator (12.5, not 12,5).",
+    )
+    assert "696279" not in result.stdout + (result.stderr or "")
+
+
+def test_empty_coordinates_are_a_qa_code_not_an_error(scenario):
+    small(scenario)
+    edit_cell(scenario, "lon", "")
+    scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+def test_latitude_95(scenario):
+    small(scenario)
+    edit_cell(scenario, "lat", "95")
+    result = scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: 1 record(s) of villages.csv have coordinates outside the range of "
+        "WGS 84 (longitude -180..180, latitude -90..90): row 1 (id '003'): latitude out of "
+        "range.",
+    )
+    assert "4.63" not in result.stdout + (result.stderr or "")  # the record's longitude
+
+
+def test_longitude_200(scenario):
+    small(scenario)
+    edit_cell(scenario, "lon", "200")
+    result = scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="row 1 (id '003'): longitude out of range. Longitudes look like 0..360: "
+        "subtract 360 from those above 180.",
+    )
+    assert "11.69" not in result.stdout + (result.stderr or "")  # the record's latitude
+
+
+def test_duplicate_ids(scenario):
+    small(scenario)
+    edit_cell(scenario, "village_id", "008")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: 1 id(s) in column 'village_id' of villages.csv occur more than once: "
+        "'008' (rows 1, 2). Ids must be unique: one record per unit.",
+    )
+
+
+def test_empty_id(scenario):
+    small(scenario)
+    edit_cell(scenario, "village_id", "")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: 1 record(s) of villages.csv have no id in column 'village_id': row 1. "
+        "Every record needs a unique id: fill them in or remove those rows.",
+    )
+
+
+def test_zero_byte_table(scenario):
+    small(scenario)
+    (scenario.folder / "villages.csv").write_bytes(b"")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"study.table: study table '{scenario.folder / 'villages.csv'}' is empty: it "
+        "has no header row. Give a CSV with a header row and one row per record.",
+    )
+
+
+def test_header_only_table(scenario):
+    small(scenario)
+    path = scenario.folder / "villages.csv"
+    path.write_text(path.read_text(encoding="utf-8").splitlines()[0] + "\n", encoding="utf-8")
+    message = (
+        "the study table villages.csv has a header but no rows; nothing to compute. Add one "
+        "row per record (or check that the right file is named)."
+    )
+    scenario.expect(["check", scenario.recipe], code=1, message=message)
+    scenario.expect(["run", scenario.recipe], code=1, message=message)
+
+
+def test_table_symlink_loop(scenario):
+    os.symlink(scenario.folder / "loop_b.csv", scenario.folder / "loop_a.csv")
+    os.symlink(scenario.folder / "loop_a.csv", scenario.folder / "loop_b.csv")
+    scenario.data["study"]["table"] = "loop_a.csv"
+    small(scenario)
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=f"study table '{scenario.folder / 'loop_a.csv'}' is a symlink loop (the link "
+        "leads back to itself).",
+    )
+
+
+# ------------------------------------------------------------ confidentiality
+def test_shared_table_keeping_coordinates_gets_a_warning(scenario):
+    small(scenario)
+    scenario.data["output"]["drop"] = []
+    scenario.write_recipe()
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        scenario.expect(
+            ["check", scenario.recipe],
+            code=0,
+            message="warning (CoordinatesKeptWarning): output.table villages_covariates.csv "
+            "keeps the exact coordinate column(s) lon, lat (study.points): anyone the table is "
+            "shared with can place every record. Add output: {drop: [lon, lat]} to leave them "
+            "out, or set output: {keep_coordinates: true} if the outputs stay with the study "
+            "data.",
+        )
+
+
+def test_keep_coordinates_silences_the_warning(scenario):
+    small(scenario)
+    scenario.data["output"]["drop"] = []
+    scenario.data["output"]["keep_coordinates"] = True
+    scenario.write_recipe()
+    # The test run turns covextract's warnings into errors: a warning would fail here.
+    scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
