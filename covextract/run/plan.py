@@ -161,6 +161,7 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         from covextract.run.confidential import warn_if_coordinates_kept
 
         warn_if_coordinates_kept(recipe, table, paths["table"])
+        _check_record_dates(recipe, table, problem)
 
     # units
     from covextract.covariates.base import unit_key
@@ -223,6 +224,18 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 cov.where("layer"),
             )
     return Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series, layers)
+
+
+def _check_record_dates(recipe, table, problem) -> None:
+    """Read the record dates now, so unreadable dates stop ``check``, not a finished run."""
+    from covextract.io.tables import parse_record_dates
+
+    name = recipe.study.date
+    if name and name in table.frame.columns:
+        try:
+            parse_record_dates(table.frame, name, recipe.study.date_format)
+        except CovextractError as exc:
+            problem(exc, "study.date")
 
 
 def _check_table(recipe, table, table_path, paths, problem) -> None:

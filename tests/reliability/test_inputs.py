@@ -323,3 +323,164 @@ def test_keep_coordinates_silences_the_warning(scenario):
     scenario.write_recipe()
     # The test run turns covextract's warnings into errors: a warning would fail here.
     scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+# ------------------------------------------------------------ boundaries
+def boundaries(scenario, edit):
+    """Units from village_areas.gpkg after ``edit(gdf) -> gdf``."""
+    path = scenario.folder / "village_areas.gpkg"
+    gdf = gpd.read_file(path)
+    gdf = edit(gdf)
+    path.unlink()
+    gdf.to_file(path, driver="GPKG")
+    scenario.data["units"] = {"boundaries": {"file": "village_areas.gpkg", "id": "village_id"}}
+    return small(scenario)
+
+
+def test_boundary_ids_without_leading_zeros(scenario):
+    def strip(gdf):
+        # A spreadsheet dropped the zeros of "003" (ids of 100 and above would still match).
+        gdf = gdf[gdf["village_id"].str.startswith("0")].copy()
+        gdf["village_id"] = gdf["village_id"].str.lstrip("0")
+        return gdf
+
+    boundaries(scenario, strip)
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: no record of villages.csv matches a boundary: ids in 'village_id' look "
+        "like '003', '008', '010', ids in 'id' of village_areas.gpkg look like '70', '19', '13'. "
+        "Some ids differ only by leading zeros: the two columns must hold the same text (a "
+        "spreadsheet may have dropped the zeros). Check study.id and units.boundaries.id.",
+    )
+
+
+def test_boundary_file_with_no_features(scenario):
+    boundaries(scenario, lambda gdf: gdf.iloc[:0])
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: the boundary file village_areas.gpkg has no records (no rows or "
+        "features); nothing to use. Check that the right file (and layer) is named.",
+    )
+
+
+def test_mixed_geometry_types(scenario):
+    def mix(gdf):
+        gdf.loc[0, "geometry"] = gdf.geometry.iloc[0].centroid
+        return gdf
+
+    boundaries(scenario, mix)
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="units: village_areas.gpkg holds 1 Point, 39 Polygon; units need Polygon or "
+        "MultiPolygon geometries. Give a boundary file of polygons (points need units.buffer_m "
+        "or units.at_point).",
+    )
+
+
+def test_null_geometry(scenario):
+    # A record without a geometry gets QA no_location at run time; check accepts it.
+    def null(gdf):
+        gdf.loc[0, "geometry"] = None
+        return gdf
+
+    boundaries(scenario, null)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+def test_empty_geometry(scenario):
+    # An empty polygon gets QA empty_geometry at run time; check accepts it.
+    def empty(gdf):
+        gdf.loc[0, "geometry"] = shapely.Polygon()
+        return gdf
+
+    boundaries(scenario, empty)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        scenario.expect(["check", scenario.recipe], code=0, message=LOOK_RIGHT)
+
+
+def test_self_intersecting_polygon(scenario):
+    def bowtie(gdf):
+        x0, y0, x1, y1 = gdf.geometry.iloc[0].bounds
+        gdf.loc[0, "geometry"] = shapely.Polygon([(x0, y0), (x1, y1), (x1, y0), (x0, y1)])
+        return gdf
+
+    boundaries(scenario, bowtie)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        scenario.expect(
+            ["check", scenario.recipe],
+            code=0,
+            message="warning (GeometryRepairedWarning): 1 invalid polygon(s) in village_areas.gpkg "
+            "were repaired with shapely make_valid, keeping their polygonal parts: row 23 (id "
+            "'070'). Check them in a GIS if the results look wrong (QA 'geometry_repaired').",
+        )
+
+
+# ------------------------------------------------------------ dates
+def window(scenario):
+    """A rain window before each visit date: rain_mean_sum3m_lag1."""
+    scenario.data["layers"] = {
+        "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"}
+    }
+    scenario.data["covariates"] = [
+        {
+            "layer": "rain",
+            "stats": ["mean"],
+            "before": {"months": 3, "lag_months": 1, "combine": "sum"},
+        }
+    ]
+    return scenario.write_recipe()
+
+
+def test_odd_date_format(scenario):
+    window(scenario)
+    edit_cell(scenario, "visit_date", "14/01/2021")
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="study.date: column 'visit_date' mixes date formats: most cells are YYYY-MM-DD "
+        "but row 1 ('14/01/2021') are not. State the format with study: {date_format: "
+        "'%d/%m/%Y'} (strftime codes), or fix those cells.",
+    )
+
+
+def test_date_column_missing(scenario):
+    scenario.data["study"]["date"] = "visit_day"
+    window(scenario)
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message="study.date: column 'visit_day' is not in the study table (columns: village_id, "
+        "village_name, lon, lat, settlement, buffer_radius_m, visit_date, households, notes). "
+        "Did you mean 'visit_date'?",
+    )
+
+
+def test_all_dates_missing_warns_and_runs(scenario):
+    window(scenario)
+    path = scenario.folder / "villages.csv"
+    lines = path.read_text(encoding="utf-8").splitlines()
+    col = lines[0].split(",").index("visit_date")
+    rows = [lines[0]]
+    for line in lines[1:]:
+        cells = line.split(",")
+        cells[col] = ""
+        rows.append(",".join(cells))
+    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        scenario.expect(
+            ["run", scenario.recipe],
+            code=0,
+            message="warning (EmptyCovariateWarning): covariate 1 (layer rain): every value of "
+            "rain_mean_sum3m_lag1 is missing; most common reason: no_date (40 of 40 records): "
+            "the record has no date, or one that cannot be read; no window. Check the inputs "
+            "before using this column.",
+            changed=True,
+        )
