@@ -264,7 +264,9 @@ class Covariate:
         if len(columns) == 1:
             what = f"every value of {columns[0]} is missing"
         else:
-            shown = ", ".join(columns[:4]) + (f" and {len(columns) - 4} more" if len(columns) > 4 else "")
+            shown = ", ".join(columns[:4]) + (
+                f" and {len(columns) - 4} more" if len(columns) > 4 else ""
+            )
             what = f"every value of its {len(columns)} columns ({shown}) is missing"
         text = f"covariate {self.index + 1} (layer {self.layer_name}): {what}"
         if counts:
