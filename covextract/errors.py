@@ -31,6 +31,8 @@ __all__ = [
     "GeometryRepairedWarning",
     "CacheWarning",
     "LowValidShareWarning",
+    "EmptyCovariateWarning",
+    "CoordinatesKeptWarning",
 ]
 
 
@@ -161,3 +163,14 @@ class UnknownClassWarning(CovextractWarning):
 
 class LagZeroWarning(CovextractWarning):
     """A window before each record's date includes days after it (lag 0)."""
+
+
+class EmptyCovariateWarning(CovextractWarning):
+    """A covariate came out entirely missing: no unit has a value in any of its columns."""
+
+
+class CoordinatesKeptWarning(CovextractWarning):
+    """An output written for sharing keeps exact locations (coordinate columns, points).
+
+    Silenced by ``output: {keep_coordinates: true}`` in the recipe.
+    """

@@ -36,10 +36,15 @@ def demo_dir(tmp_path) -> Path:
 def write_recipe():
     """Return ``write(folder, data, name="test_recipe.yaml") -> Path`` writing a recipe as YAML.
 
-    The default name leaves the demo's own ``recipe.yaml`` untouched.
+    The default name leaves the demo's own ``recipe.yaml`` untouched. Test
+    outputs are never shared, so ``output.keep_coordinates`` is set to true
+    unless the test sets it (tests of the coordinates warning set it false or
+    use the reliability harness).
     """
 
     def write(folder, data: dict, name: str = "test_recipe.yaml") -> Path:
+        if isinstance(data, dict) and isinstance(data.get("output"), dict):
+            data = {**data, "output": {"keep_coordinates": True, **data["output"]}}
         path = Path(folder) / name
         path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
         return path

@@ -67,7 +67,7 @@ def scene(tmp_path):
                 "pairs": [["forest", "built"], ["any", "built"]],
             },
         ],
-        "output": {"table": "out/sites.csv"},
+        "output": {"table": "out/sites.csv", "keep_coordinates": True},
     }
     return tmp_path, recipe
 

@@ -23,7 +23,7 @@ def _recipe(demo_dir, covariates, units=None):
             "units": units or {"buffer_m": 2000},
             "layers": {"lights": {"file": "night_lights_2021.tif"}},
             "covariates": covariates,
-            "output": {"table": "out/pop.csv"},
+            "output": {"table": "out/pop.csv", "keep_coordinates": True},
         },
         base_dir=demo_dir,
     )
@@ -57,7 +57,7 @@ def test_reallocated_population_of_districts_equals_their_totals(demo_dir):
             "units": {"boundaries": {"file": "zones_as_units.gpkg", "id": "district_id"}},
             "layers": {"lights": {"file": "night_lights_2021.tif"}},
             "covariates": [REALLOCATE],
-            "output": {"table": "out/zones.csv"},
+            "output": {"table": "out/zones.csv", "keep_coordinates": True},
         },
         base_dir=demo_dir,
     )

@@ -55,7 +55,7 @@ def _recipe(folder, covariates, **output):
                 "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"}
             },
             "covariates": covariates,
-            "output": {"table": "out/sites.csv", **output},
+            "output": {"table": "out/sites.csv", "keep_coordinates": True, **output},
         },
         base_dir=folder,
     )
@@ -222,7 +222,7 @@ def test_trend_equals_scipy_on_the_unit_series(tmp_path):
             "units": {"buffer_m": 5000},
             "layers": {"v": {"file": "y/v_{year}.tif", "every": "year"}},
             "covariates": [{"layer": "v", "stats": ["mean"], "trend": {"periods": "2001..2015"}}],
-            "output": {"table": "out/t.csv"},
+            "output": {"table": "out/t.csv", "keep_coordinates": True},
         },
         base_dir=tmp_path,
     )
@@ -231,7 +231,7 @@ def test_trend_equals_scipy_on_the_unit_series(tmp_path):
         {
             **recipe.to_dict(),
             "covariates": [{"layer": "v", "stats": ["mean"], "periods": "2001..2015"}],
-            "output": {"table": "out/t.csv", "panel": "out/p"},
+            "output": {"table": "out/t.csv", "panel": "out/p", "keep_coordinates": True},
         },
         base_dir=tmp_path,
     )
@@ -302,7 +302,7 @@ def test_spi_before_visit_matches_the_library(tmp_path):
         },
         "units": {"buffer_m": 5000},
         "layers": {"rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month"}},
-        "output": {"table": "out/t.csv", "panel": "out/p"},
+        "output": {"table": "out/t.csv", "panel": "out/p", "keep_coordinates": True},
     }
     with pytest.warns(ShortBaselineWarning):
         result = run(
@@ -389,7 +389,7 @@ def test_change_is_computed_per_pixel_on_pixels_valid_in_both(tmp_path):
             "covariates": [
                 {"layer": "v", "stats": ["mean", "count"], "change": {"from": 2019, "to": 2020}}
             ],
-            "output": {"table": "out/t.csv"},
+            "output": {"table": "out/t.csv", "keep_coordinates": True},
         },
         base_dir=tmp_path,
     )

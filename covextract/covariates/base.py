@@ -211,12 +211,17 @@ class Covariate:
         """Codebook text of what a run learnt (a fitted model, zones without light)."""
         return ""
 
-    def warn(self, outcome: Outcome, n_units: int) -> None:
-        """Warn about what the outcome shows (units outside the layer, unknown codes)."""
+    def warn(self, outcome: Outcome, n_units: int, unit_qa=None) -> None:
+        """Warn about what the outcome shows (units outside the layer, unknown codes).
+
+        ``unit_qa`` holds the unit set's own QA codes per unit (no location, no
+        boundary), which explain an entirely missing covariate as well as the
+        outcome's codes do.
+        """
         import warnings
 
         from covextract.core.messages import user_stacklevel
-        from covextract.errors import UnitOutsideLayerWarning
+        from covextract.errors import EmptyCovariateWarning, UnitOutsideLayerWarning
 
         outside = sum("outside_layer" in q for q in outcome.qa)
         if outside:
@@ -226,6 +231,59 @@ class Covariate:
                 UnitOutsideLayerWarning,
                 stacklevel=user_stacklevel(),
             )
+        empty = self.empty_text(outcome, unit_qa)
+        if empty:
+            warnings.warn(empty, EmptyCovariateWarning, stacklevel=user_stacklevel())
+
+    def empty_text(self, outcome: Outcome, unit_qa=None) -> str:
+        """The warning text when every value of every column is missing, else ``""``.
+
+        Table columns are read from ``outcome.values``; a covariate that writes
+        only to the long panel is judged by the panel's ``value`` column. The
+        most common QA code (unit codes included) is named with its count and
+        meaning, so the warning says why.
+        """
+        columns = [c.name for c in self.columns if c.name in outcome.values]
+        if columns:
+            arrays = [outcome.values[c] for c in columns]
+        elif outcome.panel is not None and "value" in outcome.panel.columns:
+            columns = sorted({c.name for c in self.columns if c.where == "panel"}) or [self.prefix]
+            arrays = [outcome.panel["value"]]
+        else:
+            return ""
+        for a in arrays:
+            if len(a) == 0 or pd.Series(a).notna().any():
+                return ""
+        counts: dict = {}
+        n_records = len(outcome.qa)
+        units = unit_qa if unit_qa is not None else [()] * n_records
+        for u, z in zip(units, outcome.qa, strict=False):
+            codes = list(u) + (z.split(";") if isinstance(z, str) else list(z))
+            for code in dict.fromkeys(filter(None, codes)):
+                counts[code] = counts.get(code, 0) + 1
+        if len(columns) == 1:
+            what = f"every value of {columns[0]} is missing"
+        else:
+            shown = ", ".join(columns[:4]) + (
+                f" and {len(columns) - 4} more" if len(columns) > 4 else ""
+            )
+            what = f"every value of its {len(columns)} columns ({shown}) is missing"
+        text = f"covariate {self.index + 1} (layer {self.layer_name}): {what}"
+        if counts:
+            code, n = max(counts.items(), key=lambda kv: kv[1])
+            meaning = self.qa_meaning(code)
+            text += f"; most common reason: {code} ({n} of {n_records} records)"
+            text += f": {meaning}" if meaning else ""
+        else:
+            text += "; no QA code explains it (check the layer's values, nodata and expression)"
+        return text + ". Check the inputs before using this column."
+
+    def qa_meaning(self, code: str) -> str:
+        """What a QA code means, from this kind's codes, the engine's and the units'."""
+        from covextract.engine.zonal import QA_CODES as ENGINE_CODES
+        from covextract.units import QA_CODES as UNIT_CODES
+
+        return {**UNIT_CODES, **ENGINE_CODES, **self.qa_codes()}.get(code, "")
 
     def fingerprint(self, plan) -> dict:
         """What the covariate's results depend on besides its input files and units."""

@@ -83,8 +83,8 @@ class LandCoverCovariate(Covariate):
             self.columns.append(col)
         return True
 
-    def warn(self, outcome: Outcome, n_units: int) -> None:
-        super().warn(outcome, n_units)
+    def warn(self, outcome: Outcome, n_units: int, unit_qa=None) -> None:
+        super().warn(outcome, n_units, unit_qa)
         if outcome.unknown_codes:
             from covextract.core.messages import user_stacklevel
             from covextract.errors import UnknownClassWarning

@@ -35,7 +35,7 @@ class ReallocateCovariate(Covariate):
             zones = read_boundaries(
                 recipe.resolve(spec.zones.file), id_column=spec.zones.id, layer=spec.zones.layer
             )
-            totals_table = read_study_table(recipe.resolve(spec.totals.file))
+            totals_table = read_study_table(recipe.resolve(spec.totals.file), what="totals table")
         except CovextractError as exc:
             problem(exc, key)
             return False

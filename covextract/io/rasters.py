@@ -149,6 +149,11 @@ class RasterSource:
 
 
 def _check_path(path: Path, what: str) -> None:
+    if path.is_symlink() and not path.exists() and _symlink_loop(path):
+        raise InputFileError(
+            f"{what} {path} is a symlink loop (the link leads back to itself). Point the "
+            "link at the real file, or name the file itself in the recipe."
+        )
     if not path.exists():
         raise InputFileError(
             f"{what} not found: {path}. Check the path in the recipe; relative paths "
@@ -158,6 +163,24 @@ def _check_path(path: Path, what: str) -> None:
         raise InputFileError(f"{what} is a folder, not a file: {path}")
     if not os.access(path, os.R_OK):
         raise InputFileError(f"{what} is not readable: {path}. Check its permissions.")
+    if path.stat().st_size == 0:
+        raise InputFileError(
+            f"{what} {path} is empty (0 bytes): an interrupted download or copy? Fetch or "
+            "copy the file again."
+        )
+
+
+def _symlink_loop(path: Path) -> bool:
+    """True when resolving ``path`` runs in a circle (``Path.exists`` only says False)."""
+    import errno
+
+    try:
+        path.resolve(strict=True)
+    except RuntimeError:  # Python < 3.13 raises RuntimeError for a loop
+        return True
+    except OSError as exc:
+        return exc.errno == errno.ELOOP
+    return False
 
 
 def open_layer(

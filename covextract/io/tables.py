@@ -160,6 +160,19 @@ def ids_as_text(values) -> tuple[np.ndarray, np.ndarray]:
 # readers
 
 
+def _symlink_loop(path: Path) -> bool:
+    """True when resolving ``path`` runs in a circle (``Path.exists`` only says False)."""
+    try:
+        path.resolve(strict=True)
+    except RuntimeError:  # Python < 3.13 raises RuntimeError for a loop
+        return True
+    except OSError as exc:
+        import errno
+
+        return exc.errno == errno.ELOOP
+    return False
+
+
 def _check_file(path, what: str) -> tuple[Path, str]:
     path = Path(path)
     suffix = path.suffix.lower()
@@ -168,6 +181,11 @@ def _check_file(path, what: str) -> tuple[Path, str]:
         raise InputFileError(
             f"{what} {str(path)!r} has an unsupported file type {suffix or '(no suffix)'!r}. "
             f"Supported: {supported}. Convert the file to one of these."
+        )
+    if path.is_symlink() and not path.exists() and _symlink_loop(path):
+        raise InputFileError(
+            f"{what} {str(path)!r} is a symlink loop (the link leads back to itself). "
+            "Point the link at the real file, or name the file itself in the recipe."
         )
     if not path.exists():
         raise InputFileError(
@@ -313,7 +331,7 @@ def _from_geodataframe(gdf: gpd.GeoDataFrame, path: Path) -> StudyTable:
     )
 
 
-def read_study_table(path, *, layer: str | None = None) -> StudyTable:
+def read_study_table(path, *, layer: str | None = None, what: str = "study table") -> StudyTable:
     """Read a study table (CSV, Parquet, GeoPackage, GeoJSON or shapefile).
 
     Parameters
@@ -325,6 +343,8 @@ def read_study_table(path, *, layer: str | None = None) -> StudyTable:
     layer : str, optional
         Layer of a multi-layer vector file (GeoPackage). Required when the
         file has more than one layer.
+    what : str
+        How messages name the file (``"boundary file"``, ``"totals table"``).
 
     Returns
     -------
@@ -336,7 +356,8 @@ def read_study_table(path, *, layer: str | None = None) -> StudyTable:
         The file is missing, unreadable or of an unsupported type.
     TableError
         A vector file has no CRS; a CSV has duplicate column names or no
-        header; a multi-layer file was given without ``layer``.
+        header; the table has no rows; a multi-layer file was given without
+        ``layer``.
 
     Examples
     --------
@@ -345,12 +366,26 @@ def read_study_table(path, *, layer: str | None = None) -> StudyTable:
         table = read_study_table("clusters.csv")
         table.frame.loc[0, "cluster_id"]   # '007', not 7
     """
-    path, kind = _check_file(path, "study table")
+    path, kind = _check_file(path, what)
     if kind == "csv":
-        return StudyTable(frame=_read_csv(path), path=path, format="csv")
-    if kind == "parquet":
-        return _read_parquet(path)
-    return _read_vector(path, layer)
+        table = StudyTable(frame=_read_csv(path), path=path, format="csv")
+    elif kind == "parquet":
+        table = _read_parquet(path)
+    else:
+        table = _read_vector(path, layer)
+    if len(table.frame) == 0:
+        # An empty table would run to an empty output and exit 0: say so instead.
+        if kind == "csv":
+            raise TableError(
+                f"the {what} {path.name} has a header but no rows; nothing to compute. "
+                "Add one row per record (or check that the right file is named)."
+            )
+        raise TableError(
+            f"the {what} {path.name} has no records (no rows or features); "
+            + ("nothing to compute. " if what == "study table" else "nothing to use. ")
+            + "Check that the right file (and layer) is named."
+        )
+    return table
 
 
 def read_boundaries(path, *, id_column: str, layer: str | None = None) -> gpd.GeoDataFrame:
@@ -382,7 +417,7 @@ def read_boundaries(path, *, id_column: str, layer: str | None = None) -> gpd.Ge
         No CRS, the id column is missing, the file holds no geometry, or an
         id occurs more than once.
     """
-    table = read_study_table(path, layer=layer)
+    table = read_study_table(path, layer=layer, what="boundary file")
     if table.geometry is None:
         raise TableError(
             f"boundary file {str(table.path)!r} holds no geometries. "

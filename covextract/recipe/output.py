@@ -37,6 +37,12 @@ class Output(RecipeModel):
     panel : str, optional
         Folder of the long panel of per-period values (Parquet, one file per
         period); needed by covariates with ``periods:``.
+    keep_coordinates : bool
+        Keep exact locations in the shared outputs without a warning. By
+        default a table that keeps the ``study.points`` columns, or a
+        GeoPackage that writes each record's point, gets a
+        :class:`~covextract.errors.CoordinatesKeptWarning`; ``true`` says the
+        outputs stay with the confidential data on purpose.
     state : str, optional
         Folder of the weights cache. It reveals where the units are, so the
         default (filled in by :class:`Recipe`) sits next to the study table,
@@ -49,6 +55,7 @@ class Output(RecipeModel):
     drop: Annotated[list[Column], BeforeValidator(lambda v: [] if v is None else v)] = Field(
         default_factory=list
     )
+    keep_coordinates: bool = False
     state: PathText | None = None
     panel: PathText | None = None
 

@@ -131,7 +131,7 @@ class Assembly:
     def add(self, cov, outcome: Outcome) -> None:
         """Add one covariate's outcome (computed now or loaded from the state folder)."""
         units = self.plan.unit_sets[cov.unit_key]
-        cov.warn(outcome, len(units))
+        cov.warn(outcome, len(units), units.qa)
         self.values.update(outcome.values)
         if outcome.panel is not None:
             self.panels.append(outcome.panel)

@@ -143,9 +143,10 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         if isinstance(exc_or_msg, RecipeError):
             problems.extend(exc_or_msg.problems)
         else:
-            problems.append(
-                RecipeProblem(str(exc_or_msg), key=key, file=file, line=_line(recipe, key))
-            )
+            text = str(exc_or_msg)
+            if key and text.startswith(f"{key}: "):
+                text = text[len(key) + 2 :]  # the problem's prefix names the key already
+            problems.append(RecipeProblem(text, key=key, file=file, line=_line(recipe, key)))
 
     paths = output_paths(recipe)
     table_path = recipe.resolve(recipe.study.table)
@@ -156,6 +157,11 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
         problem(exc, "study.table")
     if table is not None:
         _check_table(recipe, table, table_path, paths, problem)
+        # Shared outputs that keep exact locations get a warning, at check and at run.
+        from covextract.run.confidential import warn_if_coordinates_kept
+
+        warn_if_coordinates_kept(recipe, table, paths["table"])
+        _check_record_dates(recipe, table, problem)
 
     # units
     from covextract.covariates.base import unit_key
@@ -218,6 +224,18 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 cov.where("layer"),
             )
     return Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series, layers)
+
+
+def _check_record_dates(recipe, table, problem) -> None:
+    """Read the record dates now, so unreadable dates stop ``check``, not a finished run."""
+    from covextract.io.tables import parse_record_dates
+
+    name = recipe.study.date
+    if name and name in table.frame.columns:
+        try:
+            parse_record_dates(table.frame, name, recipe.study.date_format)
+        except CovextractError as exc:
+            problem(exc, "study.date")
 
 
 def _check_table(recipe, table, table_path, paths, problem) -> None:

@@ -303,9 +303,15 @@ def _parse_numbers(series: pd.Series, column: str, ids: np.ndarray, what: str, t
             hint = " Use a dot as the decimal separator (12.5, not 12,5)."
         elif any(("°" in t) or ("'" in t) for t in texts):
             hint = " Convert degrees-minutes-seconds to decimal degrees."
+        # A coordinate cell is shown with its digits masked: messages end up in logs and mail.
+        if "coordinate" in what:
+            shown = {int(i): _masked(str(values[i])) for i in rows}
+            examples = _examples(rows, ids, shown, quote=False) + " (digits shown as #)"
+        else:
+            examples = _examples(rows, ids, values)
         raise TableError(
             f"column {column!r} of {_name(table)} has {rows.size} {what} value(s) that are "
-            f"not numbers: {_examples(rows, ids, values)}.{hint} Give plain decimal numbers, "
+            f"not numbers: {examples}.{hint} Give plain decimal numbers, "
             "and leave the cell empty for a record without one."
         )
     return out, missing
@@ -404,7 +410,9 @@ def _screen_points(pts: _Points, ids, qa, table) -> list[tuple[type, str]]:
         rows = np.flatnonzero(suspect)
         for i in rows:
             qa[i].append("suspect_location")
-        coords = {int(i): f"({pts.x[i]:g}, {pts.y[i]:g})" for i in rows[:_MAX_EXAMPLES]}
+        # Messages name records by row and id, never by their coordinates: messages end up
+        # in logs and mail. A sentinel is no location, so saying which one it is reveals nothing.
+        coords = {int(i): _suspect_text(pts.x[i], pts.y[i]) for i in rows[:_MAX_EXAMPLES]}
         notes.append(
             (
                 SuspectLocationWarning,
@@ -420,7 +428,9 @@ def _screen_points(pts: _Points, ids, qa, table) -> list[tuple[type, str]]:
         bad = ok & ((ax > 180) | (ay > 90))
         if bad.any():
             rows = np.flatnonzero(bad)
-            coords = {int(i): f"({pts.x[i]:g}, {pts.y[i]:g})" for i in rows[:_MAX_EXAMPLES]}
+            coords = {
+                int(i): _out_of_range_text(ax[i] > 180, ay[i] > 90) for i in rows[:_MAX_EXAMPLES]
+            }
             hint = ""
             if np.all(ay[bad] <= 180) and np.all(ax[bad] <= 90):
                 hint = (
@@ -439,6 +449,26 @@ def _screen_points(pts: _Points, ids, qa, table) -> list[tuple[type, str]]:
                 f"{_examples(rows, ids, coords, quote=False)}.{hint}"
             )
     return notes
+
+
+def _suspect_text(x: float, y: float) -> str:
+    """Which marker a suspect point holds, without its other coordinate."""
+    if x == 0 and y == 0:
+        return "at (0, 0)"
+    parts = [f"{name} is {v:g}" for name, v in (("x", x), ("y", y)) if abs(v) in SENTINEL_VALUES]
+    return " and ".join(parts)
+
+
+def _out_of_range_text(x_bad: bool, y_bad: bool) -> str:
+    """Which coordinate is out of range, without its value."""
+    if x_bad and y_bad:
+        return "longitude and latitude out of range"
+    return "longitude out of range" if x_bad else "latitude out of range"
+
+
+def _masked(text: str) -> str:
+    """A cell with its digits shown as ``#``: the shape of a coordinate, not its value."""
+    return repr(re.sub(r"\d", "#", text))
 
 
 def _polygonal(geom):
@@ -798,6 +828,12 @@ def _join_boundaries(table, ids, qa, notes, boundaries, boundary_id, id_column) 
             hint = (
                 " Some ids differ only by leading zeros: the two columns must hold the same"
                 " text (a spreadsheet may have dropped the zeros)."
+            )
+        if not len(b_ids):
+            raise TableError(
+                f"no record of {_name(table)} matches a boundary: {source} has no feature "
+                f"with an id in {boundary_id!r}. Check units.boundaries.id and that the file "
+                "holds the boundaries."
             )
         raise TableError(
             f"no record of {_name(table)} matches a boundary: ids in {id_column!r} look like "

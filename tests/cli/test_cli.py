@@ -140,7 +140,7 @@ def test_check_bad_recipe_lists_problems_on_stderr(demo_dir, ndvi_recipe, write_
     assert result.stdout == ""
     lines = result.stderr.splitlines()
     assert lines[0] == f"2 problem(s) found in {path}:"
-    assert "output.drop: output.drop: column 'altitude' is not in the study table" in lines[1]
+    assert "output.drop: column 'altitude' is not in the study table" in lines[1]
     assert "layers.ndvi.file: raster of layer 'ndvi' not found" in lines[2]
     assert len(lines) == 3
     assert "Traceback" not in result.output

@@ -27,7 +27,7 @@ def _recipe(folder, covariates):
             "rain": {"file": "rain/rain_{year}{month:02d}.tif", "every": "month", "unit": "mm"},
         },
         "covariates": covariates,
-        "output": {"table": "out/t.csv"},
+        "output": {"table": "out/t.csv", "keep_coordinates": True},
     }
 
 

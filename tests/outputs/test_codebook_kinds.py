@@ -148,7 +148,7 @@ def result(demo):
             "units": {"buffer_m": 2000},
             "layers": LAYERS,
             "covariates": COVARIATES,
-            "output": {"table": "out/t.csv", "panel": "out/panel"},
+            "output": {"table": "out/t.csv", "panel": "out/panel", "keep_coordinates": True},
         },
         base_dir=demo,
     )
@@ -272,7 +272,7 @@ def test_point_units_give_the_value_under_each_point(demo):
             "units": {"at_point": "nearest"},
             "layers": {"ndvi": LAYERS["ndvi"]},
             "covariates": [{"layer": "ndvi", "stats": ["value", "valid_share"]}],
-            "output": {"table": "out/points.csv"},
+            "output": {"table": "out/points.csv", "keep_coordinates": True},
         },
         base_dir=demo,
     )
@@ -637,6 +637,7 @@ def test_shared_files_reveal_no_local_folder(tmp_path):
             "codebook": "out/codebook.csv",
             "manifest": "out/manifest.json",
             "panel": "out/panel",
+            "drop": ["lat", "lon"],
         },
     }
     (folder / "recipe.yaml").write_text(yaml.safe_dump(recipe), encoding="utf-8")

@@ -142,7 +142,9 @@ def test_unknown_key_without_close_match_lists_allowed_keys(tmp_path):
     problem = only(found, "output.colour")
     assert problem.line == 23
     assert "did you mean" not in problem.message
-    assert "allowed here: table, codebook, manifest, drop, state" in problem.message
+    assert (
+        "allowed here: table, codebook, manifest, drop, keep_coordinates, state" in problem.message
+    )
 
 
 def test_wrong_type_names_expected_type_and_value(tmp_path):

@@ -311,7 +311,9 @@ def test_out_of_range_and_swapped(tmp_path):
 def test_suspect_locations_warn_and_drop(tmp_path):
     text = VILLAGES + "004,0,0,1000,Null Island\n005,30.1,-999,1000,Sentinel\n006,99.99,5,1,S2\n"
     table = csv_table(tmp_path, text)
-    with pytest.warns(SuspectLocationWarning, match=r"3 record\(s\).*row 4 \(id '004'\): \(0, 0\)"):
+    with pytest.warns(
+        SuspectLocationWarning, match=r"3 record\(s\).*row 4 \(id '004'\): at \(0, 0\)"
+    ):
         units = build_units(table, id_column="village_id", points=PTS, buffer_m=1000)
     assert units.geometry[3] is None and units.geometry[4] is None and units.geometry[5] is None
     assert units.qa[3:] == [["suspect_location"]] * 3
