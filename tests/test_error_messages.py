@@ -281,7 +281,7 @@ CASES = {
     "output over input": Case(
         _output_over_input,
         OutputError,
-        ["output.table", "never writes over its input"],
+        ["output.table is ../demo/villages.csv", "never writes over an input"],
         key="output.table",
         line_snippet="table: ../demo/villages.csv",
     ),
