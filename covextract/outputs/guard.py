@@ -22,6 +22,7 @@ parent) is writable and has room for the expected size.
 
 from __future__ import annotations
 
+import errno
 import os
 import re
 import shutil
@@ -232,9 +233,6 @@ def _check_one(t: Target, recipe, inputs: _Inputs, owned: _Owned, overwrite: boo
     base = recipe.base_dir
     shown = shown_path(t.path, base)
     head = f"{t.label} is {shown}"
-    if t.suffixes and t.path.suffix.lower() not in t.suffixes:
-        what = {".csv": "CSV", ".json": "JSON"}.get(t.suffixes[0], t.suffixes[0])
-        return f"{head}; it is written as {what}: give a name ending in {t.suffixes[0]}"
     # a parent that is a file
     for parent in t.path.parents:
         if os.path.lexists(parent):
@@ -260,6 +258,9 @@ def _check_one(t: Target, recipe, inputs: _Inputs, owned: _Owned, overwrite: boo
                 f"{head}{via}, a folder that holds inputs ({names}); covextract replaces the "
                 "panel folder whole at every run: choose a folder of its own"
             )
+    if t.suffixes and t.path.suffix.lower() not in t.suffixes:
+        what = {".csv": "CSV", ".json": "JSON"}.get(t.suffixes[0], t.suffixes[0])
+        return f"{head}; it is written as {what}: give a name ending in {t.suffixes[0]}"
     if not os.path.lexists(t.path):
         return None
     if t.kind == "file" and real.is_dir():
@@ -358,57 +359,56 @@ def _size(path: Path) -> int:
 
 
 def _mb(n: int) -> str:
+    if n < 1_000_000:
+        return f"{max(n, 1) / 1e3:.0f} kB" if n >= 1000 else f"{n} bytes"
     return f"{n / 1e6:.1f} MB"
 
 
 def _probe(folder: Path):
-    """Create and remove a file in ``folder``: the error, or None when it is writable."""
-    name = folder / f".covextract-probe-{os.getpid()}"
+    """Why no file can be created in ``folder`` (an OSError), or None when it can.
+
+    Asked of the system without writing anything (so a ``check`` or a
+    refresh with nothing to do changes no folder): a read-only mount
+    (``statvfs``), then the effective user's permission (``access``).
+    """
     try:
-        fd = os.open(name, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    except FileExistsError:
-        return None
+        if os.statvfs(folder).f_flag & os.ST_RDONLY:
+            return OSError(errno.EROFS, os.strerror(errno.EROFS), str(folder))
+    except (OSError, AttributeError):  # no statvfs: the permission check still runs
+        pass
+    try:
+        allowed = os.access(folder, os.W_OK | os.X_OK, effective_ids=os.access in os.supports_effective_ids)
     except OSError as exc:
         return exc
-    os.close(fd)
-    try:
-        os.unlink(name)
-    except OSError as exc:
-        return exc
+    if not allowed:
+        return OSError(errno.EACCES, os.strerror(errno.EACCES), str(folder))
     return None
 
 
 def check_room(recipe, paths: dict, *, rows: int, columns: int) -> list:
     """Writability and free space of the output folders, as ``(recipe key, message)``.
 
-    Each output's nearest existing folder must accept a new file (tried:
-    permissions, read-only file systems and access lists all answer). The
+    Each output's nearest existing folder must accept a new file (not on a
+    read-only mount, writable by the effective user; nothing is written to
+    find out). The
     free space of each file system must hold the expected size: the present
     outputs' size, or ``rows × columns × BYTES_PER_CELL`` on a first run.
     """
     base = recipe.base_dir
     problems = []
-    probed: dict = {}
     needed: dict = {}  # device -> [bytes, folder, key]
     existing = 0
     ts = targets(paths)
     for t in ts:
         if t.kind != "state" and os.path.lexists(t.path):
             existing += _size(_resolved(t.path))
+    by_folder: dict = {}
     for t in ts:
-        folder = _nearest_existing(t.path if t.kind != "file" else t.path.parent)
+        # the panel is staged beside its folder, the state's files go inside it
+        folder = _nearest_existing(t.path if t.kind == "state" else t.path.parent)
         if not folder.is_dir():
             continue  # a file where a folder should be: the guard says so
-        if folder not in probed:
-            probed[folder] = _probe(folder)
-            error = probed[folder]
-            if error is not None:
-                where = "state folder (output.state)" if t.kind == "state" else "output folder"
-                reason = disk_reason(error, where)
-                what, todo = reason if reason else (str(error), f"choose another {where}")
-                problems.append(
-                    (t.key, f"{t.label}: cannot write in {shown_path(folder, base)}: {what}; {todo}")
-                )
+        by_folder.setdefault(folder, []).append(t)
         if t.key == "output.table":
             try:
                 dev = folder.stat().st_dev
@@ -416,6 +416,18 @@ def check_room(recipe, paths: dict, *, rows: int, columns: int) -> list:
                 continue
             size = existing if existing else rows * columns * BYTES_PER_CELL
             needed[dev] = [size, folder, t.key]
+    for folder, group in by_folder.items():
+        error = _probe(folder)
+        if error is None:
+            continue
+        state = group[0].kind == "state"
+        where = "state folder (output.state)" if state else "output folder"
+        reason = disk_reason(error, where)
+        what, todo = reason if reason else (str(error), f"choose another {where}")
+        labels = ", ".join(dict.fromkeys(t.key for t in group))
+        problems.append(
+            (group[0].key, f"{labels}: cannot write in {shown_path(folder, base)}: {what}; {todo}")
+        )
     for size, folder, key in needed.values():
         try:
             free = shutil.disk_usage(folder).free
