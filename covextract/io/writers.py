@@ -94,9 +94,7 @@ class WriteFailedError(OutputError):
             if intact
             else "the next run or refresh completes the interrupted commit"
         )
-        super().__init__(
-            self.errno, f"cannot write {shown or self.path}: {reason}; {todo}; {tail}"
-        )
+        super().__init__(self.errno, f"cannot write {shown or self.path}: {reason}; {todo}; {tail}")
 
     def __str__(self) -> str:
         return self.args[1]
@@ -327,7 +325,7 @@ class Commit:
 
 
 def _apply(entries: list[dict]) -> None:
-    """Perform (or complete) the renames of a journal, the last entry after the others are durable."""
+    """Perform (or complete) a journal's renames; the last once the others are durable."""
     for i, e in enumerate(entries):
         tmp, final = Path(e["tmp"]), Path(e["final"])
         if i == len(entries) - 1:

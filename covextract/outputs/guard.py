@@ -1,4 +1,4 @@
-"""The one guard of every path covextract writes: inputs are never touched, user files never replaced.
+"""One guard for every path covextract writes: never an input, never a file of the user's.
 
 :func:`guard_outputs` checks each output path (the writers' own paths, see
 :meth:`covextract.outputs.write.Writer.targets`, plus the manifest and the
@@ -77,13 +77,15 @@ def targets(paths: dict) -> list[Target]:
     for writer in WRITERS:
         if writer.wanted(ctx):
             out += writer.targets(paths)
-    out.append(Target("output.manifest", "output.manifest", Path(paths["manifest"]), "file", (".json",)))
+    out.append(
+        Target("output.manifest", "output.manifest", Path(paths["manifest"]), "file", (".json",))
+    )
     out.append(Target("output.state", "output.state", Path(paths["state"]), "state"))
     return out
 
 
 def shown_path(path, base_dir) -> str:
-    """``path`` relative to the recipe's folder when inside it, else absolute (links not followed)."""
+    """``path`` relative to the recipe's folder when inside it, else absolute (links kept)."""
     path, base = Path(os.path.abspath(path)), Path(os.path.abspath(base_dir))
     try:
         rel = path.relative_to(base)
@@ -164,7 +166,9 @@ def recipe_inputs(recipe, plan=None) -> _Inputs:
             if folder is None:
                 add(f"layer:{name}", recipe.resolve(text))
             elif _resolved(folder) != base:  # the recipe's own folder is not an input folder
-                folders.setdefault(_resolved(folder), f"the folder of layer {name}'s series (an input)")
+                folders.setdefault(
+                    _resolved(folder), f"the folder of layer {name}'s series (an input)"
+                )
     for spec in recipe.covariates:
         re_spec = getattr(spec, "reallocate", None)
         if re_spec is not None:
@@ -237,10 +241,17 @@ def _check_one(t: Target, recipe, inputs: _Inputs, owned: _Owned, overwrite: boo
     for parent in t.path.parents:
         if os.path.lexists(parent):
             if not parent.is_dir():
-                return f"{head}, but {shown_path(parent, base)} is a file, not a folder: choose another path"
+                return (
+                    f"{head}, but {shown_path(parent, base)} is a file, not a folder: "
+                    "choose another path"
+                )
             break
     real = _resolved(t.path)
-    via = "" if real == Path(os.path.abspath(t.path)) else f", which leads to {shown_path(real, base)}"
+    via = (
+        ""
+        if real == Path(os.path.abspath(t.path))
+        else f", which leads to {shown_path(real, base)}"
+    )
     if real in inputs.files:
         return f"{head}{via}, {inputs.files[real]} (an input); {_NEVER}"
     for folder, what in inputs.folders.items():
@@ -253,7 +264,9 @@ def _check_one(t: Target, recipe, inputs: _Inputs, owned: _Owned, overwrite: boo
     if t.kind == "folder":
         held = sorted(f for f in inputs.files if real in f.parents)
         if held:
-            names = ", ".join(shown_path(f, base) for f in held[:3]) + (", ..." if len(held) > 3 else "")
+            names = ", ".join(shown_path(f, base) for f in held[:3]) + (
+                ", ..." if len(held) > 3 else ""
+            )
             return (
                 f"{head}{via}, a folder that holds inputs ({names}); covextract replaces the "
                 "panel folder whole at every run: choose a folder of its own"
@@ -377,7 +390,9 @@ def _probe(folder: Path):
     except (OSError, AttributeError):  # no statvfs: the permission check still runs
         pass
     try:
-        allowed = os.access(folder, os.W_OK | os.X_OK, effective_ids=os.access in os.supports_effective_ids)
+        allowed = os.access(
+            folder, os.W_OK | os.X_OK, effective_ids=os.access in os.supports_effective_ids
+        )
     except OSError as exc:
         return exc
     if not allowed:

@@ -29,6 +29,7 @@ __all__ = [
 class MixedOutputsWarning(CovextractWarning):
     """The outputs on disk do not all belong to the run their manifest describes."""
 
+
 _PACKAGES = (
     "covextract",
     "numpy",

@@ -116,7 +116,9 @@ class CodebookWriter(Writer):
         from covextract.outputs.guard import Target
 
         return [
-            Target("output.codebook", "output.codebook", Path(paths["codebook"]), "file", (".csv",)),
+            Target(
+                "output.codebook", "output.codebook", Path(paths["codebook"]), "file", (".csv",)
+            ),
             Target(
                 "output.codebook",
                 "output.codebook's Markdown copy",
@@ -220,7 +222,9 @@ def write_outputs(
         crash_point("after_staging")
         from covextract.io.paths import file_sha256
 
-        owned = [{"path": str(final), "sha256": file_sha256(staged)} for _, final, staged in written]
+        owned = [
+            {"path": str(final), "sha256": file_sha256(staged)} for _, final, staged in written
+        ]
         owned.append(
             {
                 "path": str(paths["manifest"]),

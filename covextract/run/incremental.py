@@ -672,8 +672,10 @@ def _execute(
     notes = pieces.notes
     if mixed:
         notes.append(
-            "the outputs on disk were a mixed set (" + "; ".join(mixed[:3])
-            + ("; ..." if len(mixed) > 3 else "") + "); they were all written again"
+            "the outputs on disk were a mixed set ("
+            + "; ".join(mixed[:3])
+            + ("; ..." if len(mixed) > 3 else "")
+            + "); they were all written again"
         )
     return RefreshResult(
         status, pieces.computed, pieces.reused, missing, nxt, True, run_result, notes

@@ -55,9 +55,12 @@ def _outputs(folder: Path) -> dict:
 
 def _complete(folder: Path) -> bool:
     """The outputs on disk are the complete set their manifest describes."""
-    return verify_outputs(
-        folder / "out" / "table_manifest.json", base_dir=folder, panel=folder / "out" / "panel"
-    ) == []
+    return (
+        verify_outputs(
+            folder / "out" / "table_manifest.json", base_dir=folder, panel=folder / "out" / "panel"
+        )
+        == []
+    )
 
 
 @pytest.fixture(scope="module")

@@ -461,3 +461,37 @@ def test_disk_full_at_the_state_folder(scenario, monkeypatch):
     assert result.exit_code == 1
     after = snapshot(scenario.folder)
     assert {k: v for k, v in after.items() if not k.startswith(".covextract-state")} == before
+
+
+# ------------------------------------------------------------------ a mixed set
+def _mix(scenario) -> None:
+    """A complete run, then one output replaced by another run's (older) content."""
+    scenario.expect(["run", scenario.recipe, "-q"], code=0, message="", changed=True)
+    codebook = scenario.folder / "out" / "codebook.csv"
+    codebook.write_text(codebook.read_text(encoding="utf-8") + "\n", encoding="utf-8")
+
+
+def test_status_reports_a_mixed_output_set(scenario):
+    _mix(scenario)
+    scenario.expect(
+        ["status", scenario.recipe],
+        code=0,
+        message=(
+            "outputs: a mixed set, not the one their manifest describes (out/codebook.csv has "
+            "changed since the run); the next refresh writes them all again"
+        ),
+    )
+
+
+@pytest.mark.filterwarnings("default::covextract.outputs.manifest.MixedOutputsWarning")
+def test_check_warns_about_a_mixed_output_set(scenario):
+    _mix(scenario)
+    scenario.expect(
+        ["check", scenario.recipe],
+        code=1,
+        message=(
+            "warning (MixedOutputsWarning): the outputs are a mixed set, not the one their "
+            "manifest describes (out/codebook.csv has changed since the run); the next refresh "
+            "writes them all again"
+        ),
+    )
