@@ -46,6 +46,7 @@ __all__ = [
     "atomic_write_bytes",
     "atomic_write_text",
     "disk_reason",
+    "fsync_dir",
     "recover_commit",
     "swap_folder",
 ]
@@ -110,7 +111,8 @@ def _umask() -> int:
     return mask
 
 
-def _fsync_dir(folder: Path) -> None:
+def fsync_dir(folder: Path) -> None:
+    """Make the renames in a folder survive a power loss (fsync, best effort)."""
     with contextlib.suppress(OSError):
         fd = os.open(folder, os.O_RDONLY)
         try:
@@ -176,7 +178,7 @@ def atomic_write(path, write: Callable[[Path], None], *, durable: bool = True) -
                 raise WriteFailedError(path, exc) from None
         raise
     if durable:
-        _fsync_dir(path.parent)
+        fsync_dir(path.parent)
     return path
 
 
@@ -238,7 +240,7 @@ def swap_folder(new: Path, final: Path, ino: int) -> None:
             else:
                 os.unlink(final)
             os.rename(new, final)
-        _fsync_dir(final.parent)
+        fsync_dir(final.parent)
     for leftover in (old, new):
         if leftover.is_dir() and not leftover.is_symlink():
             shutil.rmtree(leftover, ignore_errors=True)
@@ -321,7 +323,7 @@ class Commit:
         _apply(self.entries)
         with contextlib.suppress(FileNotFoundError):
             self.journal.unlink()
-        _fsync_dir(self.journal.parent)
+        fsync_dir(self.journal.parent)
 
 
 def _apply(entries: list[dict]) -> None:
@@ -330,14 +332,14 @@ def _apply(entries: list[dict]) -> None:
         tmp, final = Path(e["tmp"]), Path(e["final"])
         if i == len(entries) - 1:
             for folder in {Path(x["final"]).parent for x in entries[:-1]}:
-                _fsync_dir(folder)
+                fsync_dir(folder)
         crash_point(f"before_rename:{final.name}")
         if e["kind"] == "folder":
             swap_folder(tmp, final, e["ino"])
         elif tmp.exists():
             os.replace(tmp, final)
     if entries:
-        _fsync_dir(Path(entries[-1]["final"]).parent)
+        fsync_dir(Path(entries[-1]["final"]).parent)
 
 
 def read_journal(state_folder) -> dict | None:

@@ -137,8 +137,8 @@ def _template_folder(recipe, text: str) -> Path | None:
     return folder
 
 
-def recipe_inputs(recipe, plan=None) -> _Inputs:
-    """Every input file and input folder of a recipe (as far as it could be planned)."""
+def recipe_inputs(recipe, extra=None) -> _Inputs:
+    """Every input file and input folder of a recipe, plus ``extra`` ``{"role", "path"}`` items."""
     files: dict = {}
     folders: dict = {}
 
@@ -175,15 +175,8 @@ def recipe_inputs(recipe, plan=None) -> _Inputs:
             label = spec.name or spec.layer
             add(f"zones:{label}", recipe.resolve(re_spec.zones.file))
             add(f"totals:{label}", recipe.resolve(re_spec.totals.file))
-    if plan is not None and plan.table is not None:
-        from covextract.run.plan import input_files
-
-        try:
-            items = input_files(plan)
-        except Exception:  # noqa: BLE001 - a partial plan: the recipe's own paths above suffice
-            items = []
-        for item in items:
-            add(item["role"], item["path"])
+    for item in extra or []:
+        add(item["role"], item["path"])
     return _Inputs(files, folders)
 
 
@@ -310,7 +303,7 @@ def _check_one(t: Target, recipe, inputs: _Inputs, owned: _Owned, overwrite: boo
     return None
 
 
-def guard_outputs(recipe, paths: dict, *, plan=None, overwrite: bool = False) -> list:
+def guard_outputs(recipe, paths: dict, *, inputs=None, overwrite: bool = False) -> list:
     """Problems with the output paths, as ``(recipe key, message)``; empty when all may be written.
 
     Parameters
@@ -318,12 +311,13 @@ def guard_outputs(recipe, paths: dict, *, plan=None, overwrite: bool = False) ->
     recipe : Recipe
     paths : dict
         The output paths by role (:func:`covextract.run.plan.output_paths`).
-    plan : Plan, optional
-        For the inputs found while planning (every period of a series).
+    inputs : list of dict, optional
+        ``{"role", "path"}`` of the inputs found while planning (every
+        period of a series: :func:`covextract.run.plan.input_files`).
     overwrite : bool
         Replace existing files covextract did not write (``--overwrite``).
     """
-    inputs = recipe_inputs(recipe, plan)
+    inputs = recipe_inputs(recipe, inputs)
     owned = _Owned(recipe, paths)
     problems = []
     seen: dict = {}

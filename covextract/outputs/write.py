@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from covextract.crashpoints import crash_point
-from covextract.io.writers import Commit, WriteFailedError, _fsync_dir
+from covextract.io.writers import Commit, WriteFailedError, fsync_dir
 
 __all__ = ["WRITERS", "Writer", "WriteContext", "write_outputs"]
 
@@ -103,7 +103,7 @@ class PanelWriter(Writer):
                     fh.flush()
                     os.fsync(fh.fileno())
             out.append((f"panel:{name}", final / name, new))
-        _fsync_dir(staged)
+        fsync_dir(staged)
         return out
 
 

@@ -237,7 +237,11 @@ def _guard(plan, overwrite, collect, problems, file) -> None:
     from covextract.outputs.guard import check_room, guard_outputs
 
     recipe = plan.recipe
-    found = guard_outputs(recipe, plan.output_paths, plan=plan, overwrite=overwrite)
+    try:
+        inputs = input_files(plan) if plan.table is not None else []
+    except CovextractError:  # a partial plan: the recipe's own paths suffice
+        inputs = []
+    found = guard_outputs(recipe, plan.output_paths, inputs=inputs, overwrite=overwrite)
     if not found:
         rows = len(plan.table.frame) if plan.table is not None else 0
         columns = (len(plan.table.frame.columns) if plan.table is not None else 0) + sum(
