@@ -11,10 +11,14 @@ closes, so a test can kill the process from outside (a real ``kill -9``) at a
 known moment without sleeping.
 
 Names in use (see DEVELOPERS.md): ``after_pieces`` (new pieces on disk, no
-output written), ``after_panel``, ``after_codebook``, ``after_table``,
-``after_manifest``, ``before_ledger_commit``, ``after_ledger_commit`` and, in
-every atomic write, ``before_rename:<file name>`` (the complete temporary file
-exists, the final name still holds the old content).
+output written), ``after_panel``, ``after_codebook``, ``after_table`` (each
+output staged beside the old one), ``after_staging`` (the whole set staged,
+the manifest too), ``after_journal`` (the commit journal in place: the commit
+is decided), ``after_manifest`` (the commit done), ``before_ledger_commit``,
+``after_ledger_commit`` and ``before_rename:<file name>`` in every atomic
+write and before each rename of the output commit (``before_rename:panel``
+for the panel folder): the complete new content exists, the final name still
+holds the old one.
 
 Unset, the variables cost one dictionary lookup per point.
 """

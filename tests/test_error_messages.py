@@ -281,7 +281,7 @@ CASES = {
     "output over input": Case(
         _output_over_input,
         OutputError,
-        ["output.table", "never writes over its input"],
+        ["output.table is villages.csv, the study table (an input)", "never writes over an input"],
         key="output.table",
         line_snippet="table: ../demo/villages.csv",
     ),

@@ -23,6 +23,12 @@ def refresh_command(
     recompute: bool = typer.Option(
         False, "--recompute", help="Compute every period again, whatever the ledger says."
     ),
+    overwrite: bool = typer.Option(
+        False,
+        "--overwrite",
+        help="Replace existing output files that covextract did not write (inputs are never "
+        "replaced).",
+    ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Compute only the periods of RECIPE that are new or changed, then rebuild the outputs.
@@ -43,6 +49,7 @@ def refresh_command(
                 threads=threads,
                 scheduler=scheduler,
                 recompute=recompute,
+                overwrite=overwrite,
             )
         except LockedError as exc:
             typer.secho(f"locked: {exc}", err=True, fg="yellow")
@@ -112,6 +119,18 @@ def status_lines(status) -> list[str]:
         lines.append(f"layer {layer} ({len(periods)} period(s)):")
         for state, labels in runs:
             lines.append(f"  {STATE_TEXT[state]:<32} {ranges_text(labels)}")
+    if status.commit_pending:
+        lines.append(
+            "outputs: a run was killed while putting them in place; the next run or refresh "
+            "completes it"
+        )
+    elif status.outputs_problems:
+        shown = "; ".join(status.outputs_problems[:3])
+        more = "; ..." if len(status.outputs_problems) > 3 else ""
+        lines.append(
+            f"outputs: a mixed set, not the one their manifest describes ({shown}{more}); "
+            "the next refresh writes them all again"
+        )
     run = status.last_run
     if run is None:
         lines.append("last run: none yet")

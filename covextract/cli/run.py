@@ -21,6 +21,12 @@ def run_command(
         help="Run block tasks on an existing dask.distributed scheduler, tcp://HOST:PORT. "
         "Workers must see the same file paths.",
     ),
+    overwrite: bool = typer.Option(
+        False,
+        "--overwrite",
+        help="Replace existing output files that covextract did not write (inputs are never "
+        "replaced).",
+    ),
     debug: bool = typer.Option(False, "--debug", help=DEBUG_HELP),
 ) -> None:
     """Compute the covariates of RECIPE and write the table, codebook and manifest."""
@@ -35,6 +41,7 @@ def run_command(
             progress=make_progress(quiet=quiet),
             threads=threads,
             scheduler=scheduler,
+            overwrite=overwrite,
         )
         if not quiet:
             print_summary(result)

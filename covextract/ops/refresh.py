@@ -8,7 +8,7 @@ refresh with nothing new computes nothing.
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from covextract.core.progress import Progress
@@ -40,6 +40,7 @@ def refresh(
     threads: int | None = None,
     scheduler: str | None = None,
     recompute: bool = False,
+    overwrite: bool = False,
 ) -> RefreshResult:
     """Bring the outputs of a recipe up to date, computing only what is due.
 
@@ -53,6 +54,8 @@ def refresh(
         they are not part of any fingerprint).
     recompute : bool
         Compute every piece again, whatever the ledger says.
+    overwrite : bool
+        Replace existing files that covextract did not write.
 
     Returns
     -------
@@ -68,7 +71,7 @@ def refresh(
     from covextract.run.plan import plan_recipe
 
     started = dt.datetime.now(dt.timezone.utc)
-    plan = plan_recipe(recipe)
+    plan = plan_recipe(recipe, overwrite=overwrite)
     progress = progress if progress is not None else Progress()
     from covextract.run.execute import note_compiling
 
@@ -112,6 +115,13 @@ class RefreshStatus:
     ledger_problem : str or None
         Why the ledger could not be read (the next refresh rebuilds it).
     state_folder : Path
+    outputs_problems : list of str
+        Why the outputs on disk are not the complete set their manifest
+        describes (a mixed set; the next refresh rewrites them); empty when
+        they are, or when nothing was written yet.
+    commit_pending : bool
+        A run was killed while renaming the outputs into place; the next
+        run or refresh completes it.
     """
 
     layers: dict
@@ -120,6 +130,8 @@ class RefreshStatus:
     next_expected: dict
     ledger_problem: str | None
     state_folder: Path
+    outputs_problems: list = field(default_factory=list)
+    commit_pending: bool = False
 
 
 def refresh_status(recipe) -> RefreshStatus:
@@ -130,7 +142,7 @@ def refresh_status(recipe) -> RefreshStatus:
     """
     from covextract.run.plan import input_files, plan_recipe
 
-    plan = plan_recipe(recipe)
+    plan = plan_recipe(recipe, outputs=False)
     state = Path(plan.output_paths["state"])
     works = plan_work(plan)
     ledger = None
@@ -179,4 +191,10 @@ def refresh_status(recipe) -> RefreshStatus:
             if p.exists() and p.stat().st_mtime_ns > written:
                 newer.append(str(p))
     _, nxt = gaps_and_next(plan)
-    return RefreshStatus(layers, last_run, newer, nxt, problem, state)
+    from covextract.io.writers import read_journal
+    from covextract.outputs.manifest import verify_outputs
+
+    paths = plan.output_paths
+    mixed = verify_outputs(manifest, base_dir=plan.recipe.base_dir, panel=paths.get("panel"))
+    pending = read_journal(state) is not None
+    return RefreshStatus(layers, last_run, newer, nxt, problem, state, mixed, pending)

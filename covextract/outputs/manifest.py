@@ -11,10 +11,24 @@ import platform
 from datetime import datetime, timezone
 from pathlib import Path
 
+from covextract.errors import CovextractWarning
 from covextract.io.paths import file_sha256, inside, shareable_path
 from covextract.io.writers import atomic_write_text
 
-__all__ = ["file_sha256", "package_versions", "write_manifest", "verify_manifest"]
+__all__ = [
+    "MixedOutputsWarning",
+    "file_sha256",
+    "package_versions",
+    "read_manifest",
+    "write_manifest",
+    "verify_manifest",
+    "verify_outputs",
+]
+
+
+class MixedOutputsWarning(CovextractWarning):
+    """The outputs on disk do not all belong to the run their manifest describes."""
+
 
 _PACKAGES = (
     "covextract",
@@ -84,8 +98,10 @@ def write_manifest(
     inputs : list of dict
         ``{"role", "path"}`` for every input file; fingerprints are added here
         unless an item already carries its ``"sha256"``.
-    outputs : list of (role, path)
-        Files written by the run; their fingerprints are recorded.
+    outputs : list of (role, path) or (role, path, staged path)
+        Files written by the run; their fingerprints are recorded (taken from
+        the staged file when given: the set is committed after the manifest
+        is staged).
     layers : dict
         ``layer name -> {"crs": ..., "grid": ...}``.
     base_dir : path
@@ -105,8 +121,8 @@ def write_manifest(
             }
         )
     written = []
-    for role, p in outputs:
-        digest = file_sha256(p)
+    for role, p, *staged in outputs:
+        digest = file_sha256(staged[0] if staged else p)
         written.append(
             {
                 "role": role,
@@ -138,16 +154,28 @@ def write_manifest(
     return Path(path)
 
 
-def verify_manifest(path, *, base_dir) -> list[str]:
+def read_manifest(path) -> dict | None:
+    """A manifest's content, or None when it is missing or not a covextract manifest."""
+    try:
+        doc = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(doc, dict) or "manifest_version" not in doc:
+        return None
+    return doc
+
+
+def verify_manifest(path, *, base_dir, which=("inputs", "outputs")) -> list[str]:
     """Problems found when comparing a manifest with the files on disk (empty: all match).
 
     ``base_dir`` is the recipe's folder, which the manifest's paths are
     relative to. Files recorded outside it (by name and hash) cannot be
-    located and are reported as such.
+    located and are reported as such. ``which`` chooses the entries checked.
     """
     doc = json.loads(Path(path).read_text())
     problems = []
-    for item in doc.get("inputs", []) + doc.get("outputs", []):
+    entries = [item for key in which for item in doc.get(key, [])]
+    for item in entries:
         if item.get("outside_recipe_folder"):
             problems.append(f"{item['path']} lies outside the recipe folder; not checked")
             continue
@@ -156,4 +184,34 @@ def verify_manifest(path, *, base_dir) -> list[str]:
             problems.append(f"{item['path']} is missing")
         elif file_sha256(p) != item["sha256"]:
             problems.append(f"{item['path']} has changed since the run")
+    return problems
+
+
+def verify_outputs(manifest, *, base_dir, panel=None) -> list[str]:
+    """Why the outputs on disk are not the complete set the manifest describes (empty: they are).
+
+    Only output entries are compared (inputs change between refreshes by
+    design). Outputs outside the recipe folder are recorded by name and hash
+    and cannot be located, so they are not compared. ``panel``, the panel
+    folder, is also checked for period files the manifest does not list.
+    """
+    from covextract.outputs.panel import panel_files
+
+    if not Path(manifest).is_file():
+        return []
+    try:
+        problems = verify_manifest(manifest, base_dir=base_dir, which=("outputs",))
+        doc = json.loads(Path(manifest).read_text())
+    except (OSError, ValueError) as exc:
+        return [f"the manifest {Path(manifest).name} is unreadable ({exc.__class__.__name__})"]
+    problems = [p for p in problems if "outside the recipe folder" not in p]
+    if panel is not None:
+        listed = {
+            (Path(base_dir) / item["path"]).resolve()
+            for item in doc.get("outputs", [])
+            if str(item.get("role", "")).startswith("panel:")
+        }
+        for f in panel_files(panel):
+            if f.resolve() not in listed:
+                problems.append(f"{shareable_path(f, base_dir)} is not in the manifest")
     return problems

@@ -10,7 +10,7 @@ import pandas as pd
 
 from covextract.io.writers import atomic_write_bytes
 
-__all__ = ["write_panel", "panel_files", "PANEL_FILE"]
+__all__ = ["write_panel", "panel_files", "panel_parts", "PANEL_FILE"]
 
 #: Names of the panel's period files (the period's first day).
 PANEL_FILE = re.compile(r"^\d{4}-\d{2}-\d{2}\.parquet$")
@@ -22,6 +22,19 @@ def panel_files(folder) -> list[Path]:
     if not folder.is_dir():
         return []
     return sorted(p for p in folder.iterdir() if PANEL_FILE.match(p.name))
+
+
+def panel_parts(panel: pd.DataFrame, *, id_column: str) -> list[tuple[str, bytes]]:
+    """``(file name, Parquet bytes)`` of each period of the panel, in period order."""
+    parts = []
+    if panel.empty:
+        return parts
+    panel = panel.sort_values(["period_start", "column", id_column], kind="stable")
+    for start, part in panel.groupby("period_start", sort=True):
+        buffer = io.BytesIO()
+        part.reset_index(drop=True).to_parquet(buffer, index=False, engine="pyarrow")
+        parts.append((f"{pd.Timestamp(start).date().isoformat()}.parquet", buffer.getvalue()))
+    return parts
 
 
 def write_panel(folder, panel: pd.DataFrame, *, id_column: str) -> list:
@@ -36,16 +49,11 @@ def write_panel(folder, panel: pd.DataFrame, *, id_column: str) -> list:
     """
     folder = Path(folder)
     written = []
-    if not panel.empty:
-        panel = panel.sort_values(["period_start", "column", id_column], kind="stable")
-        for start, part in panel.groupby("period_start", sort=True):
-            path = folder / f"{pd.Timestamp(start).date().isoformat()}.parquet"
-            buffer = io.BytesIO()
-            part.reset_index(drop=True).to_parquet(buffer, index=False, engine="pyarrow")
-            data = buffer.getvalue()
-            if not (path.is_file() and path.read_bytes() == data):
-                atomic_write_bytes(path, data)
-            written.append(path)
+    for name, data in panel_parts(panel, id_column=id_column):
+        path = folder / name
+        if not (path.is_file() and path.read_bytes() == data):
+            atomic_write_bytes(path, data)
+        written.append(path)
     keep = {p.name for p in written}
     for old in panel_files(folder):
         if old.name not in keep:

@@ -224,6 +224,7 @@ def run(
     progress: Progress | None = None,
     threads: int | None = None,
     scheduler: str | None = None,
+    overwrite: bool = False,
 ) -> RunResult:
     """Compute every covariate of a recipe; write the outputs unless ``write=False``.
 
@@ -243,6 +244,9 @@ def run(
     scheduler : str, optional
         Address of a running dask.distributed scheduler (``tcp://HOST:PORT``;
         overrides ``execution.scheduler``). Workers must see the same paths.
+    overwrite : bool
+        Replace existing files that covextract did not write (an output path
+        that names an input is refused whatever this says).
 
     Returns
     -------
@@ -254,7 +258,7 @@ def run(
     progress = progress if progress is not None else Progress()
     started = datetime.now(timezone.utc)
     clock = time.perf_counter()
-    plan = plan_recipe(recipe)
+    plan = plan_recipe(recipe, outputs=write, overwrite=overwrite)
     note_compiling(plan, progress)
     if write:
         from covextract.run.incremental import execute_incremental

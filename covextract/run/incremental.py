@@ -279,6 +279,16 @@ def gaps_and_next(plan) -> tuple[dict, dict]:
     return missing, nxt
 
 
+def mixed_outputs(plan) -> list[str]:
+    """Why the outputs on disk are not the complete set of their manifest (empty: they are)."""
+    from covextract.outputs.manifest import verify_outputs
+
+    paths = plan.output_paths
+    return verify_outputs(
+        paths["manifest"], base_dir=plan.recipe.base_dir, panel=paths.get("panel")
+    )
+
+
 def _outputs_current(plan, outputs_fp: str) -> bool:
     """True when the manifest records ``outputs_fp`` and every output still has its hash."""
     from covextract.io.paths import file_sha256
@@ -430,19 +440,31 @@ def remove_leftovers(plan) -> list[Path]:
     """Remove the temporary files of atomic writes that a killed run left behind.
 
     Called with the state lock held, so no other covextract process is
-    writing them. Looks only in the folders covextract writes: those of the
-    table, codebook and manifest, the panel folder, the state folder and its
+    writing them, and after :func:`~covextract.io.writers.recover_commit`
+    (a pending commit's temporaries are its new outputs). Looks only in the
+    folders covextract writes: those of the table, codebook and manifest,
+    the panel folder and its parent (staged panel folders
+    ``.<panel>.<8 chars>.tmp`` or ``.old``), the state folder and its
     pieces; only names of the atomic writers' pattern are touched.
     """
+    import shutil
+
     paths = plan.output_paths
     state = Path(paths["state"])
     folders = {Path(paths[k]).parent for k in ("table", "codebook", "manifest")} | {state}
-    if plan.recipe.output.panel is not None:
-        folders.add(Path(plan.recipe.resolve(plan.recipe.output.panel)))
+    removed = []
+    if "panel" in paths:
+        panel = Path(paths["panel"])
+        folders.add(panel)
+        staged = re.compile(rf"^\.{re.escape(panel.name)}\.[A-Za-z0-9]{{8}}\.(tmp|old)$")
+        if panel.parent.is_dir():
+            for item in panel.parent.iterdir():
+                if item.is_dir() and not item.is_symlink() and staged.match(item.name):
+                    shutil.rmtree(item, ignore_errors=True)
+                    removed.append(item)
     pieces = state / PIECES_DIR
     if pieces.is_dir():
         folders |= {p for p in pieces.iterdir() if p.is_dir()}
-    removed = []
     for folder in sorted(folders):
         if not folder.is_dir():
             continue
@@ -480,33 +502,85 @@ def execute_incremental(
         The ledger was written by another covextract version.
     """
     state = Path(plan.output_paths["state"])
-    with StateLock(state):
-        leftovers = remove_leftovers(plan)
-        ledger, note = open_ledger(state)
-        with ledger:
-            run_id = ledger.start_run()
-            try:
-                result = _execute(
-                    plan,
-                    ledger,
-                    started,
-                    progress=progress,
-                    threads=threads,
-                    scheduler=scheduler,
-                    recompute=recompute,
-                    skip_when_current=skip_when_current,
-                )
-            except BaseException as exc:
-                with contextlib.suppress(Exception):
-                    ledger.finish_run(run_id, "error", {"error": str(exc)})
-                raise
-            if note:
-                result.notes.insert(0, note)
-            if leftovers:
-                result.notes.append(
-                    f"removed {len(leftovers)} temporary file(s) left by an interrupted run"
-                )
-            ledger.finish_run(run_id, result.status, result.summary())
+    try:
+        with StateLock(state):
+            return _locked(
+                plan,
+                state,
+                started,
+                progress=progress,
+                threads=threads,
+                scheduler=scheduler,
+                recompute=recompute,
+                skip_when_current=skip_when_current,
+            )
+    except OSError as exc:
+        raise _write_failure(plan, exc) from None
+
+
+def _write_failure(plan, exc: OSError):
+    """A full disk, quota or permission error as one line naming the file; others unchanged."""
+    from covextract.io.writers import WriteFailedError, disk_reason
+    from covextract.outputs.guard import shown_path
+
+    state = Path(plan.output_paths["state"])
+    base = plan.recipe.base_dir
+    if isinstance(exc, WriteFailedError):
+        path = exc.path
+    elif disk_reason(exc) is not None:
+        path = Path(exc.filename or state)
+    else:
+        return exc
+    try:
+        in_state = Path(os.path.abspath(path)).is_relative_to(os.path.abspath(state))
+    except (TypeError, ValueError):
+        in_state = False
+    if in_state:
+        shown = f"the state folder {shown_path(state, base)}"
+        where = "state folder (output.state)"
+    else:
+        shown, where = shown_path(path, base), "output folder"
+    cause = exc.cause if isinstance(exc, WriteFailedError) else exc
+    intact = exc.intact if isinstance(exc, WriteFailedError) else True
+    return WriteFailedError(path, cause, shown=shown, intact=intact, where=where)
+
+
+def _locked(
+    plan, state, started, *, progress, threads, scheduler, recompute, skip_when_current
+) -> RefreshResult:
+    from covextract.io.writers import recover_commit
+
+    recovered = recover_commit(state)
+    leftovers = remove_leftovers(plan)
+    ledger, note = open_ledger(state)
+    with ledger:
+        run_id = ledger.start_run()
+        try:
+            result = _execute(
+                plan,
+                ledger,
+                started,
+                progress=progress,
+                threads=threads,
+                scheduler=scheduler,
+                recompute=recompute,
+                skip_when_current=skip_when_current,
+            )
+        except BaseException as exc:
+            with contextlib.suppress(Exception):
+                ledger.finish_run(run_id, "error", {"error": str(exc)})
+            raise
+        if note:
+            result.notes.insert(0, note)
+        if recovered:
+            result.notes.append(
+                "completed the commit of the outputs that an interrupted run had begun"
+            )
+        if leftovers:
+            result.notes.append(
+                f"removed {len(leftovers)} temporary file(s) left by an interrupted run"
+            )
+        ledger.finish_run(run_id, result.status, result.summary())
     return result
 
 
@@ -548,6 +622,7 @@ def _execute(
     if skip_when_current and not any_due and _outputs_current(plan, outputs_fp):
         reused = {w.cov.prefix: len(w.tasks) for w in works}
         return RefreshResult("nothing_to_do", {}, reused, missing, nxt, False)
+    mixed = mixed_outputs(plan)
 
     with execution_settings(recipe, threads, scheduler) as (threads, client):
         cache = WeightCache(state)
@@ -594,8 +669,16 @@ def _execute(
         ledger.record(pieces.new_rows)
         crash_point("after_ledger_commit")
     status = "partial" if missing else "success"
+    notes = pieces.notes
+    if mixed:
+        notes.append(
+            "the outputs on disk were a mixed set ("
+            + "; ".join(mixed[:3])
+            + ("; ..." if len(mixed) > 3 else "")
+            + "); they were all written again"
+        )
     return RefreshResult(
-        status, pieces.computed, pieces.reused, missing, nxt, True, run_result, pieces.notes
+        status, pieces.computed, pieces.reused, missing, nxt, True, run_result, notes
     )
 
 

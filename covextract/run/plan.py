@@ -111,7 +111,9 @@ def _build_unit_set(recipe, table, key, boundaries_cache):
     return build_units(table, **kw)
 
 
-def plan_recipe(recipe, *, collect: bool = False) -> Plan:
+def plan_recipe(
+    recipe, *, collect: bool = False, outputs: bool = True, overwrite: bool = False
+) -> Plan:
     """Resolve a recipe into a :class:`Plan`, opening every input but reading no pixels.
 
     Parameters
@@ -121,6 +123,13 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
     collect : bool
         Collect every problem into ``plan.problems`` instead of raising at the
         first one (what ``covextract check`` does).
+    outputs : bool
+        Check the output paths (:mod:`covextract.outputs.guard`: never an
+        input, never a file covextract did not write) and that their folders
+        are writable and have room, before anything is computed. ``status``
+        and ``run(write=False)`` write nothing and skip it.
+    overwrite : bool
+        Allow replacing existing files covextract did not write.
 
     Raises
     ------
@@ -223,7 +232,43 @@ def plan_recipe(recipe, *, collect: bool = False) -> Plan:
                 f"{src.grid.crs.to_string()}); check the layer file and the study's CRS",
                 cov.where("layer"),
             )
-    return Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series, layers)
+    plan = Plan(recipe, table, unit_sets, sources, covariates, paths, problems, series, layers)
+    if outputs:
+        _guard(plan, overwrite, collect, problems, file)
+    return plan
+
+
+def _guard(plan, overwrite, collect, problems, file) -> None:
+    """The output guard, then writability and free space (only when the paths are sound)."""
+    from covextract.outputs.guard import check_room, guard_outputs
+
+    recipe = plan.recipe
+    try:
+        inputs = input_files(plan) if plan.table is not None else []
+    except CovextractError:  # a partial plan: the recipe's own paths suffice
+        inputs = []
+    found = guard_outputs(recipe, plan.output_paths, inputs=inputs, overwrite=overwrite)
+    if not found:
+        rows = len(plan.table.frame) if plan.table is not None else 0
+        columns = (len(plan.table.frame.columns) if plan.table is not None else 0) + sum(
+            len(c.columns) for c in plan.covariates
+        )
+        found = check_room(recipe, plan.output_paths, rows=rows, columns=columns)
+    for key, message in found:
+        if not collect:
+            raise OutputError(message)
+        problems.append(_NamedProblem(message, key=key, file=file, line=_line(recipe, key)))
+
+
+class _NamedProblem(RecipeProblem):
+    """A problem whose message starts with its key: the prefix gives only file and line."""
+
+    __slots__ = ()
+
+    def __str__(self) -> str:
+        if self.file:
+            return f"{self.file}{f':{self.line}' if self.line else ''}: {self.message}"
+        return self.message
 
 
 def _check_record_dates(recipe, table, problem) -> None:
@@ -239,14 +284,7 @@ def _check_record_dates(recipe, table, problem) -> None:
 
 
 def _check_table(recipe, table, table_path, paths, problem) -> None:
-    if paths["table"].resolve() == table_path.resolve():
-        problem(
-            OutputError(
-                f"output.table is the study table itself ({table_path}); covextract never "
-                "writes over its input. Choose another file name."
-            ),
-            "output.table",
-        )
+    # output paths against the inputs: covextract.outputs.guard, at the end of planning
     gpkg = gpkg_problem(recipe, table, paths["table"])
     if gpkg is not None:
         problem(gpkg, "output.table")
@@ -397,7 +435,34 @@ def check_recipe(recipe, *, report: list | None = None) -> list:
             _report_unknown_codes(name, layer, src)
     if report is not None:
         report.extend(series_report(plan))
+    _warn_mixed_outputs(plan)
     return plan.problems
+
+
+def _warn_mixed_outputs(plan) -> None:
+    """Warn when the outputs on disk are not the complete set their manifest describes."""
+    from covextract.io.writers import read_journal
+    from covextract.outputs.manifest import MixedOutputsWarning, verify_outputs
+
+    paths = plan.output_paths
+    if read_journal(paths["state"]) is not None:
+        text = (
+            "a run was killed while putting the outputs in place; the next run or refresh "
+            "completes it"
+        )
+    else:
+        mixed = verify_outputs(
+            paths["manifest"], base_dir=plan.recipe.base_dir, panel=paths.get("panel")
+        )
+        if not mixed:
+            return
+        text = (
+            "the outputs are a mixed set, not the one their manifest describes ("
+            + "; ".join(mixed[:3])
+            + ("; ..." if len(mixed) > 3 else "")
+            + "); the next refresh writes them all again"
+        )
+    warnings.warn(text, MixedOutputsWarning, stacklevel=user_stacklevel())
 
 
 def _report_unknown_codes(name, layer, src) -> None:

@@ -24,7 +24,9 @@ from typer.testing import CliRunner
 from covextract.cli.app import app
 from covextract.crashpoints import CRASH_ENV, HOLD_ENV
 from covextract.demo import lay_out_demo
+from covextract.io.writers import COMMIT_JOURNAL, recover_commit
 from covextract.ops.refresh import refresh
+from covextract.outputs.manifest import verify_outputs
 from covextract.run import run
 from covextract.state.ledger import Ledger
 from covextract.state.lock import EXIT_CODES, LockedError
@@ -40,12 +42,25 @@ def _write(folder: Path, data: dict) -> Path:
 
 
 def _outputs(folder: Path) -> dict:
+    """The output files as a reader sees them (temporaries and staged folders left aside)."""
     out = folder / "out"
     return {
         p.relative_to(out): p.read_bytes()
         for p in sorted(out.rglob("*"))
-        if p.is_file() and p.name != "table_manifest.json"
+        if p.is_file()
+        and p.name != "table_manifest.json"
+        and not any(part.startswith(".") for part in p.relative_to(out).parts)
     }
+
+
+def _complete(folder: Path) -> bool:
+    """The outputs on disk are the complete set their manifest describes."""
+    return (
+        verify_outputs(
+            folder / "out" / "table_manifest.json", base_dir=folder, panel=folder / "out" / "panel"
+        )
+        == []
+    )
 
 
 @pytest.fixture(scope="module")
@@ -99,17 +114,26 @@ def _ledger_consistent(state: Path) -> set:
     return {r.period_start for r in rows}
 
 
-#: crash point -> whether the new table is already in place when it fires
+#: crash point -> the output set it leaves: "old" (the previous set, complete), "new" (the
+#: new set, complete) or "journal" (the commit is decided and half done: the next run or
+#: refresh completes it before anything else, giving the new set)
 CRASH_POINTS = {
-    "before_rename:2021-12-01.parquet": False,  # the first new piece, complete but not renamed
-    "after_pieces": False,
-    "after_panel": False,
-    "after_codebook": False,
-    "before_rename:table.csv": False,
-    "after_table": True,
-    "after_manifest": True,
-    "before_ledger_commit": True,
-    "after_ledger_commit": True,
+    "before_rename:2021-12-01.parquet": "old",  # the first new piece, complete, not renamed
+    "after_pieces": "old",
+    "after_panel": "old",  # staged: the new panel folder beside the old one
+    "after_codebook": "old",
+    "after_table": "old",
+    "after_staging": "old",  # every new file staged, the manifest too; no journal yet
+    "before_rename:commit.json": "old",  # the journal complete, not yet in place
+    "after_journal": "journal",
+    "before_rename:panel": "journal",  # each rename of the commit, in its fixed order
+    "before_rename:table_codebook.csv": "journal",
+    "before_rename:table_codebook.md": "journal",
+    "before_rename:table.csv": "journal",
+    "before_rename:table_manifest.json": "journal",  # the manifest is renamed last
+    "after_manifest": "new",
+    "before_ledger_commit": "new",
+    "after_ledger_commit": "new",
 }
 
 
@@ -127,9 +151,16 @@ def test_a_refresh_killed_at_a_crash_point_is_completed_by_the_next(point, state
         check=False,
     )
     assert killed.returncode == -signal.SIGKILL, killed.stderr
-    # every output is complete: the previous table until the rename, the new one after
-    table = (folder / "out" / TABLE).read_bytes()
-    assert table == (final if CRASH_POINTS[point] else before)[TABLE]
+    # the set is the old one or the new one, each complete; a commit killed half way is
+    # recorded in its journal and completed (what the next run does first, under the lock)
+    left = CRASH_POINTS[point]
+    journal = state / COMMIT_JOURNAL
+    assert journal.exists() == (left == "journal")
+    if left == "journal":
+        assert recover_commit(state)
+        assert not journal.exists()
+    assert _outputs(folder) == (before if left == "old" else final)
+    assert _complete(folder)
     recorded = _ledger_consistent(state)
     committed = point == "after_ledger_commit"
     assert ("2021-12-01" in recorded) == committed
