@@ -45,7 +45,7 @@ import pandas as pd
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy.special import digamma, gammainc, gammaincc, ndtri, polygamma
 
-from covextract.derive.time import (
+from covextract.derive.panel import (
     _calendar_kind,
     _check_baseline,
     _check_positive_int,
