@@ -46,3 +46,16 @@ def shareable_path(path, base_dir, *, sha256=None) -> str:
     if sha256 is None:
         sha256 = file_sha256(path) if path.exists() else "missing"
     return f"{path.name} (sha256 {sha256[:12]})"
+
+
+def symlink_loop(path: Path) -> bool:
+    """True when resolving ``path`` runs in a circle (``Path.exists`` only says False)."""
+    import errno
+
+    try:
+        Path(path).resolve(strict=True)
+    except RuntimeError:  # Python < 3.13 raises RuntimeError for a loop
+        return True
+    except OSError as exc:
+        return exc.errno == errno.ELOOP
+    return False

@@ -18,6 +18,7 @@ import numpy as np
 
 from covextract.core.grid import Grid
 from covextract.errors import InputFileError, RasterError
+from covextract.io.paths import symlink_loop
 
 __all__ = ["RasterSource", "open_layer", "describe_raster", "gdal_env"]
 
@@ -149,7 +150,7 @@ class RasterSource:
 
 
 def _check_path(path: Path, what: str) -> None:
-    if path.is_symlink() and not path.exists() and _symlink_loop(path):
+    if path.is_symlink() and not path.exists() and symlink_loop(path):
         raise InputFileError(
             f"{what} {path} is a symlink loop (the link leads back to itself). Point the "
             "link at the real file, or name the file itself in the recipe."
@@ -168,19 +169,6 @@ def _check_path(path: Path, what: str) -> None:
             f"{what} {path} is empty (0 bytes): an interrupted download or copy? Fetch or "
             "copy the file again."
         )
-
-
-def _symlink_loop(path: Path) -> bool:
-    """True when resolving ``path`` runs in a circle (``Path.exists`` only says False)."""
-    import errno
-
-    try:
-        path.resolve(strict=True)
-    except RuntimeError:  # Python < 3.13 raises RuntimeError for a loop
-        return True
-    except OSError as exc:
-        return exc.errno == errno.ELOOP
-    return False
 
 
 def open_layer(

@@ -27,6 +27,7 @@ import pandas as pd
 import pyproj
 
 from covextract.errors import InputFileError, TableError
+from covextract.io.paths import symlink_loop
 
 __all__ = [
     "StudyTable",
@@ -160,19 +161,6 @@ def ids_as_text(values) -> tuple[np.ndarray, np.ndarray]:
 # readers
 
 
-def _symlink_loop(path: Path) -> bool:
-    """True when resolving ``path`` runs in a circle (``Path.exists`` only says False)."""
-    try:
-        path.resolve(strict=True)
-    except RuntimeError:  # Python < 3.13 raises RuntimeError for a loop
-        return True
-    except OSError as exc:
-        import errno
-
-        return exc.errno == errno.ELOOP
-    return False
-
-
 def _check_file(path, what: str) -> tuple[Path, str]:
     path = Path(path)
     suffix = path.suffix.lower()
@@ -182,7 +170,7 @@ def _check_file(path, what: str) -> tuple[Path, str]:
             f"{what} {str(path)!r} has an unsupported file type {suffix or '(no suffix)'!r}. "
             f"Supported: {supported}. Convert the file to one of these."
         )
-    if path.is_symlink() and not path.exists() and _symlink_loop(path):
+    if path.is_symlink() and not path.exists() and symlink_loop(path):
         raise InputFileError(
             f"{what} {str(path)!r} is a symlink loop (the link leads back to itself). "
             "Point the link at the real file, or name the file itself in the recipe."
